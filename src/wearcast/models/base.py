@@ -1,0 +1,67 @@
+"""What every wearcast survival model offers.
+
+Time scale is age in days. A model maps covariates ``X`` (a DataFrame with the
+life table's covariate columns) to a cumulative hazard ``H(t | x)``; from it
+follow the survival function ``S(t | x) = exp(-H(t | x))`` and the probability
+a planner needs, failure within ``h`` days for a unit working at age ``a``::
+
+    P(fail in (a, a + h] | working at a) = 1 - exp(-(H(a + h | x) - H(a | x)))
+"""
+
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+
+def conditional_failure_probability(h_start: np.ndarray, h_end: np.ndarray) -> np.ndarray:
+    """``1 - exp(-(h_end - h_start))``, clipped to [0, 1]; shapes broadcast."""
+    increment = np.maximum(np.asarray(h_end, float) - np.asarray(h_start, float), 0.0)
+    return np.clip(-np.expm1(-increment), 0.0, 1.0)
+
+
+class SurvivalModel(ABC):
+    """Common interface. Subclasses implement ``fit``, ``risk_score`` and
+    ``cumulative_hazard_at``; the rest follows."""
+
+    #: Short name used in outputs and bundles ("boosted", "forest", "cox").
+    name: str = "model"
+
+    @abstractmethod
+    def fit(self, table) -> "SurvivalModel":
+        """Fit on a :class:`wearcast.LifeTable`; returns self."""
+
+    @abstractmethod
+    def risk_score(self, X: pd.DataFrame) -> np.ndarray:
+        """Relative risk, shape (n,); higher means expected to fail sooner."""
+
+    @abstractmethod
+    def cumulative_hazard_at(self, X: pd.DataFrame, ages: np.ndarray) -> np.ndarray:
+        """``H(age_i | x_i)`` for each row, shape (n,); ``ages`` in days, shape (n,)."""
+
+    def cumulative_hazard(self, X: pd.DataFrame, times: np.ndarray) -> np.ndarray:
+        """``H(t_j | x_i)`` on a shared grid, shape (n, m)."""
+        times = np.asarray(times, float)
+        n = len(X)
+        out = np.empty((n, len(times)))
+        for j, t in enumerate(times):
+            out[:, j] = self.cumulative_hazard_at(X, np.full(n, t))
+        return out
+
+    def survival(self, X: pd.DataFrame, times: np.ndarray) -> np.ndarray:
+        """``S(t_j | x_i)``, shape (n, m), within [0, 1] and non-increasing in t."""
+        return np.exp(-self.cumulative_hazard(X, times))
+
+    def fail_probability(self, X: pd.DataFrame, age: np.ndarray, horizon_days: float) -> np.ndarray:
+        """P(fail within ``horizon_days`` | working at ``age``), shape (n,)."""
+        age = np.asarray(age, float)
+        return conditional_failure_probability(
+            self.cumulative_hazard_at(X, age), self.cumulative_hazard_at(X, age + float(horizon_days))
+        )
+
+    def save(self, folder: Path) -> list[Path]:  # pragma: no cover - each model overrides
+        """Write data files describing the fitted model into ``folder``; return them."""
+        raise NotImplementedError(f"{type(self).__name__} cannot be saved yet")
