@@ -62,6 +62,24 @@ class SurvivalModel(ABC):
             self.cumulative_hazard_at(X, age), self.cumulative_hazard_at(X, age + float(horizon_days))
         )
 
+    def contributions(self, X: pd.DataFrame) -> pd.DataFrame:
+        """Signed contribution of each covariate to the log-risk score, shape (n, p).
+
+        Columns are the covariate names; rows add up (with a bias term the model
+        may keep apart) to ``log risk``. Models without drivers raise
+        ``NotImplementedError``.
+        """
+        raise NotImplementedError(f"{type(self).__name__} does not give per-unit drivers")
+
+    def unfitted_copy(self, seed: int) -> "SurvivalModel":
+        """A fresh, unfitted model with the same settings and a new seed.
+
+        Choices tuned during ``fit`` (for example the number of boosted trees
+        picked by cross-validation) are fixed in the copy, so bootstrap refits
+        measure sampling variability, not re-tuning.
+        """
+        raise NotImplementedError(f"{type(self).__name__} cannot be refitted yet")
+
     def save(self, folder: Path) -> list[Path]:  # pragma: no cover - each model overrides
         """Write data files describing the fitted model into ``folder``; return them."""
         raise NotImplementedError(f"{type(self).__name__} cannot be saved yet")
