@@ -68,6 +68,9 @@ class RiskSets:
     group_count: np.ndarray  # (m,) d: failing rows per group
     group_weight: np.ndarray  # (m,) W: summed weight of failing rows per group
     row_group: np.ndarray  # (n,) failure group of a failing row, -1 otherwise
+    fail_age: np.ndarray  # (m,) failure age of each group (days), increasing within a stratum
+    fail_stratum: np.ndarray  # (m,) stratum code of each group (index into stratum_labels)
+    stratum_labels: np.ndarray  # (n_strata,) the distinct strata labels, sorted
 
     @property
     def n_events(self) -> int:
@@ -122,11 +125,13 @@ def prepare_risk_sets(
         raise ValueError("weights must be n finite, non-negative numbers")
     if strata is None:
         stratum = np.zeros(n, dtype=np.int64)
+        labels = np.zeros(1, dtype=np.int64)
     else:
         strata = np.asarray(strata).ravel()
         if strata.size != n:
             raise ValueError(f"strata must have length {n}; got {strata.size}")
-        stratum = np.unique(strata, return_inverse=True)[1].astype(np.int64).ravel()
+        labels, stratum = np.unique(strata, return_inverse=True)
+        stratum = stratum.astype(np.int64).ravel()
 
     # Integer keys (stratum, age rank): exact comparisons, strata kept apart.
     ages, inverse = np.unique(np.concatenate([entry, exit]), return_inverse=True)
@@ -170,6 +175,9 @@ def prepare_risk_sets(
         group_count=group_count,
         group_weight=group_weight,
         row_group=row_group,
+        fail_age=ages[fail_keys % span] if m else np.zeros(0),
+        fail_stratum=fail_keys // span,
+        stratum_labels=labels,
     )
 
 
@@ -247,6 +255,19 @@ def _gradient_hessian(rs: RiskSets, out: dict) -> tuple[np.ndarray, np.ndarray]:
         grad[rows] -= rj * out["a2"][grp]
         hess[rows] += -rj * out["a2"][grp] + rj * rj * (2.0 * out["b2"][grp] - out["b3"][grp])
     return grad, np.maximum(hess, 0.0)
+
+
+def baseline_hazard_increments(rs: RiskSets, eta: np.ndarray) -> np.ndarray:
+    """Jumps of the baseline cumulative hazard at each failure group, shape (m,).
+
+    Breslow: ``W / S``; Efron: ``sum_{k=0}^{d-1} (W/d) / (S - (k/d) E)`` (the
+    tie-corrected estimator R's ``survfit.coxph`` pairs with Efron ties). Risks
+    are ``exp(eta)`` (not shifted), so the result is the hazard at ``eta = 0``.
+    Ages and strata of the groups are ``rs.fail_age`` and ``rs.fail_stratum``.
+    """
+    _, out = _pieces(rs, eta, derivatives=True)
+    shift = float(out["eta"].max()) if rs.n else 0.0
+    return out["a"] * np.exp(-shift)
 
 
 def cox_loss(rs: RiskSets, eta: np.ndarray) -> float:

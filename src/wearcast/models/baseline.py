@@ -1,0 +1,196 @@
+"""The Breslow baseline cumulative hazard, with delayed entry and strata.
+
+A risk-score model (Cox, boosted trees) gives each row a log relative risk
+``eta``; the baseline turns it into a cumulative hazard on the age scale::
+
+    H(a | eta) = H0(a) * exp(eta)
+
+``H0`` is Breslow's estimator over the rows' ``(entry, exit]`` risk sets, so a
+unit that entered observation late (left truncation) only counts from its entry
+age on. With all ``eta = 0`` it is the Nelson–Aalen estimator. ``H0`` is a right-
+continuous step function: 0 before the first failure age, flat after the last
+one (:attr:`BaselineHazard.max_age`). There is no extrapolation past the last
+failure age, so probabilities for ages beyond it understate the risk; callers
+should warn when they ask for such ages.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from wearcast.models._cox_kernels import baseline_hazard_increments, prepare_risk_sets
+from wearcast.models._hazard import breslow_cumulative_hazard, step_at
+from wearcast.models.base import conditional_failure_probability
+
+_FORMAT = "wearcast.baseline_hazard"
+_VERSION = 1
+_SINGLE = "all"  # the label of the only stratum when no strata are given
+
+
+def _labels(strata, shape) -> np.ndarray:
+    """Strata labels as strings (the keys used in saved files)."""
+    return np.broadcast_to(np.asarray(strata).astype(str), shape)
+
+
+@dataclass
+class BaselineHazard:
+    """Per-stratum step functions ``H0``: ``ages[s]`` (k,) days and ``cumhaz[s]`` (k,).
+
+    Strata are keyed by ``str(label)``; without strata the only key is ``"all"``.
+    ``ties`` records the estimator: "breslow" (default) or "efron" (tie-corrected).
+    """
+
+    ages: dict[str, np.ndarray] = field(default_factory=dict)
+    cumhaz: dict[str, np.ndarray] = field(default_factory=dict)
+    ties: str = "breslow"
+
+    # -- estimation ---------------------------------------------------------
+    @classmethod
+    def estimate(
+        cls,
+        entry: np.ndarray,
+        exit: np.ndarray,
+        event: np.ndarray,
+        eta: np.ndarray | None = None,
+        *,
+        weights: np.ndarray | None = None,
+        strata: np.ndarray | None = None,
+        ties: str = "breslow",
+    ) -> "BaselineHazard":
+        """Estimate from rows: ``entry``/``exit`` ages (days), ``event`` (bool),
+        ``eta`` log relative risk (default 0), case ``weights``, ``strata``
+        labels; all shape (n,). Returns a new object."""
+        return cls(ties=ties).fit(entry, exit, event, eta, weights=weights, strata=strata)
+
+    def fit(self, entry, exit, event, eta=None, *, weights=None, strata=None, ties=None) -> "BaselineHazard":
+        """Estimate in place (see :meth:`estimate`); returns self."""
+        ties = self.ties if ties is None else ties
+        if ties not in ("breslow", "efron"):
+            raise ValueError(f"ties must be 'breslow' or 'efron'; got {ties!r}")
+        entry = np.asarray(entry, float).ravel()
+        exit = np.asarray(exit, float).ravel()
+        event = np.asarray(event, bool).ravel()
+        n = exit.size
+        eta = np.zeros(n) if eta is None else np.asarray(eta, float).ravel()
+        weights = np.ones(n) if weights is None else np.asarray(weights, float).ravel()
+        labels = np.full(n, _SINGLE) if strata is None else _labels(strata, (n,))
+        self.ages, self.cumhaz, self.ties = {}, {}, ties
+        if ties == "breslow":
+            # Shift before exp so large scores cannot overflow; undo on the hazard.
+            shift = float(eta.max()) if n else 0.0
+            risk = np.exp(eta - shift)
+            for label in np.unique(labels):
+                keep = labels == label
+                ages, cumhaz = breslow_cumulative_hazard(
+                    entry[keep], exit[keep], event[keep], risk=risk[keep], weights=weights[keep]
+                )
+                self.ages[str(label)] = ages
+                self.cumhaz[str(label)] = cumhaz * np.exp(-shift)
+        else:
+            rs = prepare_risk_sets(entry, exit, event, strata=labels, weights=weights, ties="efron")
+            increments = baseline_hazard_increments(rs, eta)
+            for code, label in enumerate(rs.stratum_labels):
+                in_stratum = rs.fail_stratum == code
+                self.ages[str(label)] = rs.fail_age[in_stratum]
+                self.cumhaz[str(label)] = np.cumsum(increments[in_stratum])
+        return self
+
+    # -- evaluation ---------------------------------------------------------
+    @property
+    def strata(self) -> list[str]:
+        return sorted(self.ages)
+
+    @property
+    def max_age(self) -> float:
+        """The last failure age (days) over all strata; ``H0`` is flat after it."""
+        last = [float(a[-1]) for a in self.ages.values() if a.size]
+        return max(last) if last else 0.0
+
+    def max_age_of(self, stratum) -> float:
+        """The last failure age (days) in one stratum (0 when it had none)."""
+        ages = self.ages[self._key(stratum)]
+        return float(ages[-1]) if ages.size else 0.0
+
+    def _key(self, stratum) -> str:
+        key = str(stratum)
+        if key not in self.ages:
+            raise ValueError(
+                f"stratum {key!r} was not in the data the baseline hazard was estimated on; "
+                f"known strata: {', '.join(self.strata)}"
+            )
+        return key
+
+    def at(self, ages: np.ndarray, strata=None) -> np.ndarray:
+        """``H0(age)``, same shape as ``ages`` (days); ``strata`` broadcasts with ``ages``.
+
+        Without ``strata`` the baseline must have a single stratum.
+        """
+        ages = np.asarray(ages, float)
+        if strata is None:
+            if len(self.ages) != 1:
+                raise ValueError(
+                    f"this baseline hazard has {len(self.ages)} strata ({', '.join(self.strata)}); pass strata="
+                )
+            (key,) = self.ages
+            return step_at(self.ages[key], self.cumhaz[key], ages)
+        labels = _labels(strata, np.broadcast_shapes(np.shape(strata), ages.shape))
+        ages = np.broadcast_to(ages, labels.shape)
+        out = np.zeros(labels.shape)
+        for label in np.unique(labels):
+            mask = labels == label
+            key = self._key(label)
+            out[mask] = step_at(self.ages[key], self.cumhaz[key], ages[mask])
+        return out
+
+    def cumulative_hazard_at(self, eta: np.ndarray, ages: np.ndarray, strata=None) -> np.ndarray:
+        """``H0(age) * exp(eta)``; ``eta`` and ``ages`` broadcast (e.g. (n, 1) with (m,) gives (n, m))."""
+        with np.errstate(over="ignore"):
+            return self.at(ages, strata) * np.exp(np.asarray(eta, float))
+
+    def survival(self, eta: np.ndarray, ages: np.ndarray, strata=None) -> np.ndarray:
+        """``exp(-H0(age) exp(eta))``, broadcast like :meth:`cumulative_hazard_at`; in [0, 1]."""
+        return np.exp(-self.cumulative_hazard_at(eta, ages, strata))
+
+    def fail_probability(self, eta: np.ndarray, age: np.ndarray, horizon_days: float, strata=None) -> np.ndarray:
+        """P(fail in ``(age, age + horizon_days]`` | working at ``age``), broadcast shape."""
+        age = np.asarray(age, float)
+        return conditional_failure_probability(
+            self.cumulative_hazard_at(eta, age, strata),
+            self.cumulative_hazard_at(eta, age + float(horizon_days), strata),
+        )
+
+    # -- saving -------------------------------------------------------------
+    def to_dict(self) -> dict:
+        """JSON-able description; floats are written at full precision (exact round trip)."""
+        return {
+            "format": _FORMAT,
+            "version": _VERSION,
+            "ties": self.ties,
+            "strata": [
+                {
+                    "label": key,
+                    "ages_days": [float(a) for a in self.ages[key]],
+                    "cumulative_hazard": [float(h) for h in self.cumhaz[key]],
+                }
+                for key in self.strata
+            ],
+        }
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "BaselineHazard":
+        """Inverse of :meth:`to_dict`; raises ``ValueError`` on a foreign or damaged dict."""
+        if not isinstance(data, dict) or data.get("format") != _FORMAT:
+            raise ValueError(f"not a saved baseline hazard (expected format {_FORMAT!r})")
+        if data.get("version") != _VERSION:
+            raise ValueError(f"baseline hazard version {data.get('version')!r} is not supported (expected {_VERSION})")
+        out = cls(ties=str(data.get("ties", "breslow")))
+        for item in data["strata"]:
+            ages = np.asarray(item["ages_days"], float)
+            cumhaz = np.asarray(item["cumulative_hazard"], float)
+            if ages.shape != cumhaz.shape or (np.diff(ages) <= 0).any() or (np.diff(cumhaz) < 0).any():
+                raise ValueError(f"baseline hazard stratum {item.get('label')!r} is damaged")
+            out.ages[str(item["label"])] = ages
+            out.cumhaz[str(item["label"])] = cumhaz
+        return out
