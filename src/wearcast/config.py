@@ -51,6 +51,7 @@ class ColumnsSection:
     entry: str = "entry"
     exit: str = "exit"
     failed: str = "failed"
+    life: str = "life"  # life_table shape only, optional: life number within a unit (1, 2, ...)
 
 
 @dataclass(frozen=True)

@@ -1,0 +1,157 @@
+"""Turn text cells into typed values; every function reports which cells failed.
+
+Pure functions on pandas Series of ``str`` (empty cell = ``""``). Each returns
+the parsed values plus a boolean mask of cells that could not be parsed, so the
+caller can quarantine exactly those rows.
+
+Dates without ``input.date_format`` accept ISO ``YYYY-MM-DD`` (or ``YYYY/MM/DD``,
+optionally followed by a time) and ``a/b/YYYY`` (``/``, ``.`` or ``-``). The
+order of ``a`` and ``b`` is settled once for all date columns of a run by
+:func:`day_first_from_values`: a value with ``a > 12`` proves day/month, one
+with ``b > 12`` proves month/day; neither (every value reads both ways) or
+both (mixed) is an error that asks for ``input.date_format``.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from wearcast.exceptions import DataError
+
+_ISO = re.compile(r"^(\d{4})[-/](\d{1,2})[-/](\d{1,2})(?:[ T](\d{1,2}):(\d{2})(?::(\d{2})(?:\.\d+)?)?)?$")
+_NUMERIC_DATE = re.compile(r"^(\d{1,2})([/.\-])(\d{1,2})\2(\d{4})(?:[ T](\d{1,2}):(\d{2})(?::(\d{2})(?:\.\d+)?)?)?$")
+_SCIENTIFIC = re.compile(r"^[+-]?\d+(?:[.,]\d+)?[eE][+-]?\d+$")
+_FLAGS = {"0": False, "1": True, "true": True, "false": False}
+
+#: Multiply a number in this unit by the factor to get days. Months and years
+#: use the mean Gregorian lengths (365.25 / 12 and 365.25 days; common practice).
+AGE_UNIT_DAYS = {"days": 1.0, "hours": 1.0 / 24.0, "weeks": 7.0, "months": 365.25 / 12.0, "years": 365.25}
+
+
+def parse_numbers(values: pd.Series, decimal: str = ".") -> tuple[pd.Series, np.ndarray]:
+    """Numbers from text. Empty cells become NaN (not bad); returns (float64, bad mask).
+
+    With ``decimal=","`` a comma is the decimal mark and a value holding both
+    ``,`` and ``.`` is rejected (thousands separators are not guessed).
+    """
+    text = values.astype(str).str.strip()
+    if decimal == ",":
+        both = text.str.contains(",", regex=False) & text.str.contains(".", regex=False)
+        text = text.str.replace(",", ".", regex=False).where(~both, "not-a-number")
+    numbers = pd.to_numeric(text.where(text != "", None), errors="coerce").astype(float)
+    finite = np.isfinite(numbers.to_numpy())
+    bad = (text != "").to_numpy() & ~finite
+    numbers = numbers.where(finite, np.nan)
+    return numbers, bad
+
+
+def parse_flags(values: pd.Series) -> tuple[pd.Series, np.ndarray]:
+    """Failed flags: exactly 0/1/true/false (any case). Returns (bool, bad mask)."""
+    key = values.astype(str).str.strip().str.lower()
+    bad = ~key.isin(list(_FLAGS)).to_numpy()
+    return key.map(lambda k: _FLAGS.get(k, False)).astype(bool), bad
+
+
+def id_problems(values: pd.Series) -> pd.Series:
+    """A reason per id cell ("" when fine): empty ids and spreadsheet-mangled ids."""
+    text = values.astype(str).str.strip()
+    reasons = pd.Series("", index=values.index, dtype=object)
+    reasons[text == ""] = "missing unit id"
+    reasons[text.str.match(_SCIENTIFIC)] = (
+        "unit id in scientific notation (a spreadsheet turned it into a number); "
+        "re-export the id column as text"
+    )
+    return reasons
+
+
+@dataclass(frozen=True)
+class DateSample:
+    """One date column of one file, for the day/month decision."""
+
+    source: str
+    column: str
+    values: pd.Series  # text cells
+    lines: pd.Series  # line numbers, aligned with values
+
+
+def day_first_from_values(samples: list[DateSample]) -> bool | None:
+    """Decide day/month order from every ``a/b/YYYY`` value in the run.
+
+    Returns True (day first), False (month first) or None (no such values).
+    Raises :class:`DataError` when the values read both ways and none settles
+    it, or when some prove day/month and others month/day.
+    """
+    proof_day, proof_month, undecided = None, None, None
+    for s in samples:
+        matches = s.values.astype(str).str.strip().str.extract(_NUMERIC_DATE)
+        if matches.empty:
+            continue
+        ok = matches[0].notna().to_numpy()
+        if not ok.any():
+            continue
+        a = pd.to_numeric(matches[0], errors="coerce").to_numpy()
+        b = pd.to_numeric(matches[2], errors="coerce").to_numpy()
+        for mask, kind in (((a > 12) & (b <= 12) & ok, "day"), ((b > 12) & (a <= 12) & ok, "month"),
+                           ((a <= 12) & (b <= 12) & ok, "both")):
+            if mask.any():
+                i = int(np.flatnonzero(mask)[0])
+                where = (s.source, int(s.lines.iloc[i]), s.column, str(s.values.iloc[i]).strip())
+                if kind == "day" and proof_day is None:
+                    proof_day = where
+                elif kind == "month" and proof_month is None:
+                    proof_month = where
+                elif kind == "both" and undecided is None:
+                    undecided = where
+    if proof_day and proof_month:
+        d, m = proof_day, proof_month
+        raise DataError(
+            f"{d[0]}: line {d[1]}, column {d[2]}: date {d[3]!r} can only be day/month, but "
+            f"{m[0]} line {m[1]}, column {m[2]} has {m[3]!r}, which can only be month/day: the export mixes "
+            "date orders. Re-export with one date format and set input.date_format "
+            "(for example date_format = \"%d/%m/%Y\")."
+        )
+    if proof_day:
+        return True
+    if proof_month:
+        return False
+    if undecided:
+        u = undecided
+        raise DataError(
+            f"{u[0]}: line {u[1]}, column {u[2]}: date {u[3]!r} reads both as day/month and as "
+            "month/day, and no date in the export settles which. Set input.date_format in the "
+            "config, for example date_format = \"%d/%m/%Y\" (day first) or \"%m/%d/%Y\" (month first)."
+        )
+    return None
+
+
+def parse_dates(values: pd.Series, *, date_format: str | None = None,
+                day_first: bool | None = None) -> tuple[pd.Series, np.ndarray]:
+    """Dates from text; empty cells are NaT (not bad). Returns (datetime64[ns], bad mask)."""
+    text = values.astype(str).str.strip()
+    empty = (text == "").to_numpy()
+    if date_format is not None:
+        parsed = pd.to_datetime(text.where(~empty, None), format=date_format, errors="coerce")
+        return parsed, parsed.isna().to_numpy() & ~empty
+    iso = text.str.extract(_ISO)
+    num = text.str.extract(_NUMERIC_DATE)
+    year = pd.to_numeric(iso[0], errors="coerce").fillna(pd.to_numeric(num[3], errors="coerce"))
+    if day_first is None or day_first:
+        day_part, month_part = num[0], num[2]
+    else:
+        day_part, month_part = num[2], num[0]
+    month = pd.to_numeric(iso[1], errors="coerce").fillna(pd.to_numeric(month_part, errors="coerce"))
+    day = pd.to_numeric(iso[2], errors="coerce").fillna(pd.to_numeric(day_part, errors="coerce"))
+    hour = pd.to_numeric(iso[3], errors="coerce").fillna(pd.to_numeric(num[4], errors="coerce")).fillna(0)
+    minute = pd.to_numeric(iso[4], errors="coerce").fillna(pd.to_numeric(num[5], errors="coerce")).fillna(0)
+    second = pd.to_numeric(iso[5], errors="coerce").fillna(pd.to_numeric(num[6], errors="coerce")).fillna(0)
+    parts = pd.DataFrame({"year": year, "month": month, "day": day, "hour": hour,
+                          "minute": minute, "second": second})
+    ok = parts[["year", "month", "day"]].notna().all(axis=1)
+    parsed = pd.Series(pd.NaT, index=values.index, dtype="datetime64[ns]")
+    if ok.any():
+        parsed[ok] = pd.to_datetime(parts[ok].astype("int64"), errors="coerce")
+    return parsed, parsed.isna().to_numpy() & ~empty

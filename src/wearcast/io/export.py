@@ -1,0 +1,358 @@
+"""Read an export, validate it row by row, quarantine bad rows, build the LifeTable.
+
+The order is fixed: read every file as text -> check whole-file problems
+(missing columns: :class:`DataError`) -> parse and check each row (a bad cell
+quarantines its row with the first reason found) -> let the builder place every
+remaining row -> prove rows read = kept + quarantined + after as_of -> stop when
+the rejected share is above ``fleet.max_bad_share``.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from wearcast.config import Config
+from wearcast.exceptions import ConfigError, DataError
+from wearcast.io import _parse
+from wearcast.io._build import BuildOutcome, BuildSettings, build_from_intervals, build_register_log
+from wearcast.io._quarantine import Quarantine, by_reason, write_quarantine
+from wearcast.io._readers import RawTable, read_export_file
+from wearcast.lifetable import LifeTable
+
+QUARANTINE_FILE = "quarantine.csv"
+
+
+@dataclass
+class Loaded:
+    """What :func:`load` hands to the public API (before the bad-share check)."""
+
+    table: LifeTable | None
+    quarantine: Quarantine
+    rows_read: int
+    rows_kept: int
+    rows_after_as_of: int
+    as_of: pd.Timestamp
+
+
+# -- reading -----------------------------------------------------------------
+
+def _read(config: Config, key: str, required: bool = True) -> RawTable | None:
+    inp = config.input
+    rel = getattr(inp, key)
+    if rel is None:
+        if required:
+            raise ConfigError(f"{config.source}: input.{key} is not set; shape {inp.shape!r} needs it. "
+                              f"Add {key} = \"path/to/file.csv\" under [input].")
+        return None
+    return read_export_file(config.path(rel), delimiter=inp.delimiter, encoding=inp.encoding, sheet=inp.sheet)
+
+
+def _require(table: RawTable, wanted: dict[str, str] | list[tuple[str, str]]) -> None:
+    """``wanted``: pairs of config key (e.g. ``columns.unit_id``) and the export's column name."""
+    pairs = list(wanted.items()) if isinstance(wanted, dict) else list(wanted)
+    missing = [(k, v) for k, v in pairs if v not in table.columns]
+    if missing:
+        names = ", ".join(f"{v!r} ({k})" for k, v in missing)
+        raise DataError(
+            f"{table.name}: missing required column(s) {names}; found {', '.join(map(repr, table.columns))}. "
+            "Rename the columns in the export or map them in the config's [columns] table."
+        )
+
+
+def _rename(table: RawTable, mapping: dict[str, str]) -> pd.DataFrame:
+    """Export columns -> wearcast names (only those present)."""
+    ren = {theirs: ours for ours, theirs in mapping.items() if theirs in table.columns and theirs != ours}
+    return table.frame.rename(columns=ren)
+
+
+# -- row checks ----------------------------------------------------------------
+
+def _check_common(frame: pd.DataFrame, q: Quarantine) -> np.ndarray:
+    """Malformed rows and bad ids; returns the mask of rows still good."""
+    q.reject(frame, frame["_malformed"] != "", "", frame["_malformed"], values=pd.Series("", index=frame.index))
+    reasons = _parse.id_problems(frame["unit_id"])
+    q.reject(frame, (reasons != "").to_numpy(), "unit_id", reasons)
+    frame["unit_id"] = frame["unit_id"].astype(str).str.strip()
+    return ~_rejected(frame, q)
+
+
+def _rejected(frame: pd.DataFrame, q: Quarantine) -> np.ndarray:
+    return np.array([q.has(s, l) for s, l in zip(frame["_source"], frame["_line"])], dtype=bool)
+
+
+def _dates(frame: pd.DataFrame, col: str, q: Quarantine, config: Config, day_first, *, required: bool) -> None:
+    if col not in frame:
+        frame[col] = pd.NaT
+        return
+    parsed, bad = _parse.parse_dates(frame[col], date_format=config.input.date_format, day_first=day_first)
+    hint = f"use YYYY-MM-DD or set input.date_format (now {config.input.date_format!r})" \
+        if config.input.date_format else "use YYYY-MM-DD or set input.date_format"
+    q.reject(frame, bad, col, f"unparseable date ({hint})")
+    if required:
+        q.reject(frame, parsed.isna().to_numpy() & ~bad, col, "missing date")
+    frame[col] = parsed
+
+
+def _numbers(frame: pd.DataFrame, cols, q: Quarantine, config: Config, reason: str) -> None:
+    for col in cols:
+        values, bad = _parse.parse_numbers(frame[col], config.input.decimal)
+        q.reject(frame, bad, col, reason)
+        frame[col] = values
+
+
+def _day_first(config: Config, frames: list[tuple[pd.DataFrame, str]]) -> bool | None:
+    if config.input.date_format:
+        return None
+    samples = [_parse.DateSample(str(f["_source"].iloc[0]), c, f[c], f["_line"]) for f, c in frames
+               if c in f and len(f)]
+    return _parse.day_first_from_values(samples)
+
+
+def _latest_date(*series: pd.Series) -> pd.Timestamp:
+    dates = [s.max() for s in series if s is not None and len(s) and pd.notna(s.max())]
+    if not dates:
+        raise DataError("the export holds no usable dates, so as_of cannot be found. Set fleet.as_of.")
+    return max(dates).normalize() if max(dates) != max(dates).normalize() else max(dates)
+
+
+def _merge(outcome: BuildOutcome, q: Quarantine, raws: dict[tuple[str, int], str]) -> None:
+    for source, line, column, value, reason in outcome.rejected:
+        row = pd.DataFrame([{"_source": source, "_line": line, "_raw": raws[(source, line)]}])
+        q.reject(row, [True], column, reason, values=pd.Series([value]))
+
+
+def _raw_index(*tables: RawTable | None) -> dict[tuple[str, int], str]:
+    out = {}
+    for t in tables:
+        if t is not None:
+            out.update(zip(zip(t.frame["_source"], t.frame["_line"].astype(int)), t.frame["_raw"]))
+    return out
+
+
+# -- register + log ---------------------------------------------------------------
+
+def _load_register_log(config: Config, as_of_override) -> Loaded:
+    cols, fleet = config.columns, config.fleet
+    register = _read(config, "register")
+    events = _read(config, "events")
+    readings = _read(config, "readings", required=False)
+    _require(register, {"columns.unit_id": cols.unit_id, "columns.install_date": cols.install_date})
+    _require(events, {"columns.unit_id": cols.unit_id, "columns.event_date": cols.event_date,
+                      "columns.event_kind": cols.event_kind})
+    if readings is not None:
+        _require(readings, {"columns.unit_id": cols.unit_id, "columns.reading_date": cols.reading_date})
+    reading_cols = tuple(c for c in fleet.covariates if readings is not None and c in readings.columns)
+    static_cols = tuple(c for c in fleet.covariates if c not in reading_cols)
+    # Every covariate must be in the register or the readings; group columns in the register.
+    _require(register, [("fleet.covariates", c) for c in static_cols] + [("fleet.group_by", c) for c in fleet.group_by])
+    register_cols = tuple(dict.fromkeys((*static_cols, *fleet.group_by)))
+
+    q = Quarantine()
+    reg = _rename(register, {"unit_id": cols.unit_id, "install_date": cols.install_date,
+                             "decommission_date": cols.decommission_date})
+    ev = _rename(events, {"unit_id": cols.unit_id, "event_date": cols.event_date,
+                          "event_kind": cols.event_kind, "failure_mode": cols.failure_mode})
+    rd = None if readings is None else _rename(readings, {"unit_id": cols.unit_id, "reading_date": cols.reading_date})
+    if "failure_mode" not in ev:
+        ev["failure_mode"] = ""
+    for f in (reg, ev, rd):
+        if f is not None:
+            _check_common(f, q)
+    day_first = _day_first(config, [(reg, "install_date"), (reg, "decommission_date"), (ev, "event_date")]
+                           + ([(rd, "reading_date")] if rd is not None else []))
+    _dates(reg, "install_date", q, config, day_first, required=True)
+    _dates(reg, "decommission_date", q, config, day_first, required=False)
+    _dates(ev, "event_date", q, config, day_first, required=True)
+    numeric_static = [c for c in static_cols if c not in fleet.categorical]
+    _numbers(reg, numeric_static, q, config, "non-numeric covariate")
+    if rd is not None:
+        _dates(rd, "reading_date", q, config, day_first, required=True)
+        _numbers(rd, reading_cols, q, config, "non-numeric covariate")
+    vocab = {k.strip().lower(): "failure" for k in fleet.failure_kinds}
+    vocab |= {k.strip().lower(): "replacement" for k in fleet.replacement_kinds}
+    vocab |= {k.strip().lower(): "decommission" for k in fleet.decommission_kinds}
+    kinds = ev["event_kind"].astype(str).str.strip().str.lower().map(vocab)
+    q.reject(ev, kinds.isna().to_numpy(), "event_kind",
+             "unknown event kind (add it to fleet.failure_kinds, replacement_kinds or decommission_kinds)")
+    ev["event_kind"] = kinds.fillna("")
+    ev["failure_mode"] = ev["failure_mode"].astype(str).str.strip()
+
+    # Duplicate register ids: no row is chosen silently, all of them are rejected.
+    dup = reg["unit_id"].duplicated(keep=False).to_numpy() & (reg["unit_id"] != "").to_numpy()
+    q.reject(reg, dup, "unit_id", "unit id appears more than once in the register")
+    reg_ok = ~_rejected(reg, q)
+    good_ids = set(reg.loc[reg_ok, "unit_id"])
+    known_ids = set(reg["unit_id"])
+    for f in (ev, rd):
+        if f is None:
+            continue
+        unknown = ~f["unit_id"].isin(known_ids).to_numpy()
+        q.reject(f, unknown, "unit_id", "unit not in the register")
+        cascade = ~f["unit_id"].isin(good_ids).to_numpy()
+        q.reject(f, cascade, "unit_id", "unit's register row was rejected")
+
+    reg_ok = reg[~_rejected(reg, q)]
+    ev_ok = ev[~_rejected(ev, q)]
+    rd_ok = None if rd is None else rd[~_rejected(rd, q)]
+    backtest = as_of_override is not None
+    if backtest:
+        as_of = pd.Timestamp(as_of_override)
+    elif fleet.as_of is not None:
+        as_of = pd.Timestamp(fleet.as_of)
+    else:
+        as_of = _latest_date(reg_ok["install_date"], reg_ok["decommission_date"], ev_ok["event_date"],
+                             None if rd_ok is None else rd_ok["reading_date"])
+    settings = BuildSettings(
+        renewal=fleet.renewal, as_of=as_of, backtest=backtest,
+        records_start=None if fleet.records_start is None else pd.Timestamp(fleet.records_start),
+        reading_columns=reading_cols, register_columns=register_cols)
+    outcome = build_register_log(reg_ok, ev_ok, rd_ok, settings)
+    _merge(outcome, q, _raw_index(register, events, readings))
+    rows_read = sum(len(t.frame) for t in (register, events, readings) if t is not None)
+    _account(rows_read, outcome, q)
+    return _finish(config, outcome, q, rows_read, as_of, reading_cols + static_cols)
+
+
+# -- life table -------------------------------------------------------------------
+
+def _load_life_table(config: Config, as_of_override) -> Loaded:
+    cols, fleet, inp = config.columns, config.fleet, config.input
+    table = _read(config, "life_table")
+    _require(table, {"columns.unit_id": cols.unit_id, "columns.exit": cols.exit, "columns.failed": cols.failed})
+    _require(table, [("fleet.covariates", c) for c in fleet.covariates] + [("fleet.group_by", c) for c in fleet.group_by])
+    if inp.age_unit not in _parse.AGE_UNIT_DAYS:
+        raise ConfigError(f"{config.source}: input.age_unit {inp.age_unit!r} is not one of "
+                          f"{', '.join(_parse.AGE_UNIT_DAYS)}.")
+    q = Quarantine()
+    f = _rename(table, {"unit_id": cols.unit_id, "entry": cols.entry, "exit": cols.exit, "failed": cols.failed,
+                        "mode": cols.failure_mode, "install_date": cols.install_date, "life": cols.life})
+    _check_common(f, q)
+    dated = "install_date" in f and _looks_dated(f["exit"], inp.decimal)
+    if "entry" not in f:  # no entry column: every life is observed from age 0
+        f["entry"] = f["install_date"] if dated else "0"
+    if dated:
+        day_first = _day_first(config, [(f, "install_date"), (f, "entry"), (f, "exit")])
+        for c in ("install_date", "entry", "exit"):
+            _dates(f, c, q, config, day_first, required=True)
+        f["entry_date"], f["exit_date"] = f["entry"], f["exit"]
+        f["entry_age"] = (f["entry"] - f["install_date"]) / pd.Timedelta(days=1)
+        f["exit_age"] = (f["exit"] - f["install_date"]) / pd.Timedelta(days=1)
+    else:
+        if as_of_override is not None:
+            raise ConfigError(f"{config.source}: an as-of backtest needs calendar dates, but "
+                              f"{table.name} gives ages. Export entry/exit as dates with an install_date column.")
+        _numbers(f, ["entry", "exit"], q, config, "non-numeric age")
+        q.reject(f, f["exit"].isna().to_numpy(), "exit", "missing exit age")
+        factor = _parse.AGE_UNIT_DAYS[inp.age_unit]
+        f["entry_age"] = f["entry"].fillna(0.0) * factor
+        f["exit_age"] = f["exit"] * factor
+    failed, bad = _parse.parse_flags(f["failed"])
+    q.reject(f, bad, "failed", "failed flag is not 0/1/true/false")
+    f["failed"] = failed
+    f["mode"] = f["mode"].astype(str).str.strip() if "mode" in f else ""
+    if "life" in f:
+        life, bad = _parse.parse_numbers(f["life"])
+        bad |= life.notna().to_numpy() & ((life % 1 != 0) | (life < 1)).to_numpy()
+        q.reject(f, bad, "life", "life number is not a whole number >= 1")
+        f["life"] = life.fillna(1)
+    elif dated:
+        f["life"] = f.groupby("unit_id")["install_date"].rank(method="dense").fillna(1)
+    else:
+        f["life"] = 1
+    _numbers(f, [c for c in fleet.covariates if c not in fleet.categorical], q, config, "non-numeric covariate")
+    ok = f[~_rejected(f, q)].copy()
+    ok["life"] = ok["life"].astype(np.int64)
+    if as_of_override is not None:
+        as_of = pd.Timestamp(as_of_override)
+    elif fleet.as_of is not None:
+        as_of = pd.Timestamp(fleet.as_of)
+    elif dated:
+        as_of = _latest_date(ok["exit_date"])
+    else:
+        as_of = None
+    settings = BuildSettings(renewal=fleet.renewal, as_of=as_of, backtest=as_of_override is not None)
+    keep = ["unit_id", "life", "entry_age", "exit_age", "failed", "mode", "_source", "_line",
+            *dict.fromkeys((*fleet.covariates, *fleet.group_by))]
+    if dated:
+        keep += ["install_date", "entry_date", "exit_date"]
+    outcome = build_from_intervals(ok[keep], settings, dated=dated)
+    _merge(outcome, q, _raw_index(table))
+    _account(len(table.frame), outcome, q)
+    return _finish(config, outcome, q, len(table.frame), as_of, tuple(fleet.covariates))
+
+
+def _looks_dated(values: pd.Series, decimal: str) -> bool:
+    text = values.astype(str).str.strip()
+    text = text[text != ""]
+    if text.empty:
+        return False
+    _, not_number = _parse.parse_numbers(text, decimal)
+    return bool(not_number.mean() > 0.5)
+
+
+# -- shared ending -------------------------------------------------------------------
+
+def _account(rows_read: int, outcome: BuildOutcome, q: Quarantine) -> None:
+    """Every row read is exactly one of kept, quarantined, after as_of."""
+    rejected = q.keys()
+    overlaps = (outcome.kept & rejected) | (outcome.kept & outcome.after_as_of) | (rejected & outcome.after_as_of)
+    total = len(outcome.kept) + len(rejected) + len(outcome.after_as_of)
+    if overlaps or total != rows_read:
+        raise RuntimeError(  # a bug in wearcast, not in the export
+            f"row accounting failed: read {rows_read}, kept {len(outcome.kept)}, quarantined {len(rejected)}, "
+            f"after as_of {len(outcome.after_as_of)}, counted twice {sorted(overlaps)[:3]}. Please report this."
+        )
+
+
+def _finish(config: Config, outcome: BuildOutcome, q: Quarantine, rows_read: int, as_of,
+            covariates) -> Loaded:
+    fleet = config.fleet
+    order = list(dict.fromkeys(covariates))
+    cov = [c for c in fleet.covariates if c in order]
+    frame = outcome.frame
+    table = None
+    if len(frame):
+        sort = ["unit_id", "life", "entry_age"]
+        frame = frame.sort_values(sort, kind="mergesort").reset_index(drop=True)
+        table = LifeTable.from_frame(frame, cov, fleet.categorical, as_of=as_of, source=config.source,
+                                     meta={"renewal": fleet.renewal, "group_by": list(fleet.group_by)})
+    return Loaded(table=table, quarantine=q, rows_read=rows_read, rows_kept=len(outcome.kept),
+                  rows_after_as_of=len(outcome.after_as_of), as_of=as_of)
+
+
+def load(config: Config, as_of: dt.date | None = None) -> Loaded:
+    """Read, check and build; raises only for whole-file problems (see module doc)."""
+    shape = config.input.shape
+    if shape == "register_log":
+        return _load_register_log(config, as_of)
+    if shape == "life_table":
+        return _load_life_table(config, as_of)
+    raise ConfigError(f"{config.source}: input.shape {shape!r} is not 'register_log' or 'life_table'.")
+
+
+def bad_share_error(loaded: Loaded, frame: pd.DataFrame, max_share: float, path: Path | None) -> DataError | None:
+    """The DataError to raise when too many rows were rejected (None when within bounds)."""
+    considered = loaded.rows_read - loaded.rows_after_as_of
+    share = len(frame) / considered if considered else 0.0
+    if len(frame) == 0 or share <= max_share:
+        return None
+    reasons = by_reason(frame)
+    top = next(iter(reasons))
+    first = frame[frame["reason"] == top].iloc[0]
+    where = f"rejected rows are listed in {path}" if path else "pass quarantine_dir to get the list of rejected rows"
+    return DataError(
+        f"{len(frame)} of {considered} rows ({share:.1%}) were rejected, above fleet.max_bad_share = "
+        f"{max_share:.1%}. Most common reason: {top} ({reasons[top]} rows), first at {first['source_file']} "
+        f"line {first['line']}, column {first['column']} (value {first['value']!r}). Fix the export "
+        f"(or raise fleet.max_bad_share); {where}.",
+        quarantine_path=None if path is None else str(path),
+    )
+
+
+def write_outputs(out_dir: Path, quarantine: pd.DataFrame) -> Path:
+    return write_quarantine(Path(out_dir) / QUARANTINE_FILE, quarantine)
