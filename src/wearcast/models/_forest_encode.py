@@ -1,0 +1,62 @@
+"""Covariates → a float matrix for tree growing (pure functions).
+
+Numeric covariates pass through as float (missing stays NaN; the trees send
+missing values down the side chosen while growing). A categorical covariate
+with levels ``L1..Lk`` (stored, sorted as text) becomes ``k`` indicator
+columns named ``"<name>=<level>"``; a level not seen while fitting gives all
+zeros, i.e. it goes the "not equal" way at every split on that covariate.
+One-hot rather than ordinal codes so a split never invents an order among
+seal types or makers.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from wearcast.exceptions import DataError
+
+
+def learn_levels(X: pd.DataFrame, categorical: tuple[str, ...]) -> dict[str, list[str]]:
+    """Sorted text levels of each categorical covariate (missing excluded)."""
+    levels = {}
+    for col in categorical:
+        values = X[col].dropna().astype(str)
+        levels[col] = sorted(values.unique().tolist())
+    return levels
+
+
+def encoded_names(covariates: tuple[str, ...], levels: dict[str, list[str]]) -> list[str]:
+    """Column names of the encoded matrix, in order."""
+    names = []
+    for col in covariates:
+        if col in levels:
+            names.extend(f"{col}={level}" for level in levels[col])
+        else:
+            names.append(col)
+    return names
+
+
+def encode(X: pd.DataFrame, covariates: tuple[str, ...], levels: dict[str, list[str]]) -> np.ndarray:
+    """Encoded covariates, shape (n, n_encoded), float32 (what the trees use)."""
+    missing = [c for c in covariates if c not in X.columns]
+    if missing:
+        raise DataError(
+            f"covariate(s) {', '.join(missing)} missing from the data given to the forest; "
+            f"found {', '.join(map(str, X.columns))}. Pass the same covariate columns as at fit."
+        )
+    blocks = []
+    for col in covariates:
+        if col in levels:
+            text = X[col].astype("object").where(X[col].notna(), None)
+            text = np.array([None if v is None else str(v) for v in text], dtype=object)
+            block = np.zeros((len(X), len(levels[col])), dtype=np.float32)
+            for j, level in enumerate(levels[col]):
+                block[:, j] = text == level
+            blocks.append(block)
+        else:
+            values = pd.to_numeric(X[col], errors="coerce").to_numpy(dtype=np.float64)
+            blocks.append(values.astype(np.float32)[:, None])
+    if not blocks:
+        return np.zeros((len(X), 0), dtype=np.float32)
+    return np.ascontiguousarray(np.hstack(blocks), dtype=np.float32)

@@ -1,0 +1,300 @@
+"""Bagged survival trees and random survival forests with delayed entry.
+
+Each tree is grown on a bootstrap sample of *units* (whole histories: a unit
+drawn k times gives its rows weight k) by least-squares splits on
+delayed-entry martingale residuals (see :mod:`wearcast.models._forest_grow`).
+Each leaf keeps the Nelson–Aalen cumulative hazard of its in-bag rows with
+delayed entry, on a bounded grid of ages (:mod:`wearcast.models._forest_leaves`),
+stored as float32. The forest's cumulative hazard is the average over trees of
+the leaf hazards; between grid ages it is a right-continuous step.
+
+``mode="bagging"`` tries every predictor at each split; ``"random_forest"``
+tries ``predictors_per_split`` of them (a share of the encoded predictors;
+default √p). The risk score is the ensemble cumulative hazard summed over the
+grid ages (higher = riskier), the "ensemble mortality" of random survival
+forests. Out-of-bag risk and Harrell's C against the number of trees are kept
+in ``oob_risk_``, ``oob_concordance_`` and ``oob_curve_``. Details and
+references: docs/forest.md.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import math
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from joblib import Parallel, delayed
+
+from wearcast import _atomic
+from wearcast.exceptions import BundleError, ConfigError, ModelError
+from wearcast.models._forest_encode import encode, encoded_names, learn_levels
+from wearcast.models._forest_grow import FlatTree, apply_tree, grow_tree
+from wearcast.models._forest_leaves import failure_age_grid, grid_column, leaf_hazards_on_grid
+from wearcast.models._forest_oob import (
+    MAX_SCORED_LIVES, OOBAccumulator, bootstrap_draw, harrell_c, last_rows_of_lives,
+)
+from wearcast.models.base import SurvivalModel
+
+MODES = ("random_forest", "bagging")
+SETTINGS_FILE = "forest.json"
+ARRAYS_FILE = "forest_arrays.npz"
+FORMAT_VERSION = 1
+
+
+@dataclass(frozen=True)
+class _GrownTree:
+    tree: FlatTree
+    leaf_hazard: np.ndarray  # float32 (n_leaves, n_grid)
+    life_risk: np.ndarray  # float64 (n_lives,) the tree's risk at each life's last row
+
+
+class SurvivalForest(SurvivalModel):
+    """Bagged survival trees / random survival forest.
+
+    Settings: ``mode`` ("random_forest" or "bagging"), ``n_trees``,
+    ``predictors_per_split`` (share in (0, 1]; None = √p for random_forest),
+    ``min_events_per_leaf`` (weighted failures each side of a split),
+    ``max_depth``, ``time_grid_points`` (at most this many grid ages),
+    ``bootstrap`` (False: every tree sees every unit once; no OOB), ``seed``,
+    ``n_jobs`` (threads; results do not depend on it).
+    """
+
+    name = "forest"
+
+    def __init__(
+        self,
+        mode: str = "random_forest",
+        n_trees: int = 200,
+        predictors_per_split: float | None = None,
+        min_events_per_leaf: int = 5,
+        max_depth: int = 12,
+        time_grid_points: int = 200,
+        *,
+        bootstrap: bool = True,
+        seed: int = 0,
+        n_jobs: int = 1,
+    ):
+        if mode not in MODES:
+            raise ConfigError(f"[model.forest] mode = {mode!r} is not known; use one of {', '.join(MODES)}.")
+        if n_trees < 1:
+            raise ConfigError(f"[model.forest] n_trees = {n_trees}; a forest needs at least 1 tree.")
+        if predictors_per_split is not None and not 0 < predictors_per_split <= 1:
+            raise ConfigError(
+                f"[model.forest] predictors_per_split = {predictors_per_split}; give a share in (0, 1] "
+                "or leave it out for √p."
+            )
+        if min_events_per_leaf < 1 or max_depth < 0 or time_grid_points < 2:
+            raise ConfigError(
+                "[model.forest] min_events_per_leaf must be >= 1, max_depth >= 0 and time_grid_points >= 2; "
+                f"got {min_events_per_leaf}, {max_depth}, {time_grid_points}."
+            )
+        self.mode = mode
+        self.n_trees = int(n_trees)
+        self.predictors_per_split = predictors_per_split
+        self.min_events_per_leaf = int(min_events_per_leaf)
+        self.max_depth = int(max_depth)
+        self.time_grid_points = int(time_grid_points)
+        self.bootstrap = bool(bootstrap)
+        self.seed = int(seed)
+        self.n_jobs = int(n_jobs)
+
+    @classmethod
+    def from_config(cls, section, seed: int, n_jobs: int = 1) -> "SurvivalForest":
+        """Build from a :class:`wearcast.config.ForestSection`."""
+        return cls(section.mode, section.n_trees, section.predictors_per_split, section.min_events_per_leaf,
+                   section.max_depth, section.time_grid_points, seed=seed, n_jobs=n_jobs)
+
+    def settings(self) -> dict:
+        return {"mode": self.mode, "n_trees": self.n_trees, "predictors_per_split": self.predictors_per_split,
+                "min_events_per_leaf": self.min_events_per_leaf, "max_depth": self.max_depth,
+                "time_grid_points": self.time_grid_points, "bootstrap": self.bootstrap,
+                "seed": self.seed, "n_jobs": self.n_jobs}
+
+    def unfitted_copy(self, seed: int) -> "SurvivalForest":
+        return type(self)(**{**self.settings(), "seed": int(seed)})
+
+    def _max_features(self):
+        if self.mode == "bagging":
+            return None
+        return "sqrt" if self.predictors_per_split is None else float(self.predictors_per_split)
+
+    # -- fitting -----------------------------------------------------------
+    def fit(self, table) -> "SurvivalForest":
+        """Grow the forest on a :class:`wearcast.LifeTable`; returns self."""
+        if table.n_failures == 0:
+            raise ModelError("the life table has no failures, so no hazard can be estimated; "
+                             "check the failure event kinds in [fleet] failure_kinds.")
+        self.covariates_ = tuple(table.covariates)
+        self.levels_ = learn_levels(table.X, tuple(table.categorical))
+        self.feature_names_ = encoded_names(self.covariates_, self.levels_)
+        X = encode(table.X, self.covariates_, self.levels_)
+        entry, exit, event = table.entry, table.exit, table.event
+        units = table.unit_codes()
+        n_units = int(units.max()) + 1
+        self.grid_ = failure_age_grid(exit, event, self.time_grid_points)
+        rng = np.random.default_rng(self.seed)
+        self.tree_seeds_ = rng.integers(0, 2**63 - 1, size=self.n_trees, dtype=np.int64)
+        scoring_seed = int(rng.integers(0, 2**63 - 1))
+        lives = last_rows_of_lives(units, table.frame["life"].to_numpy(), exit)
+        scored = np.arange(len(lives))
+        if len(lives) > MAX_SCORED_LIVES:
+            scored = np.sort(np.random.default_rng(scoring_seed).choice(len(lives), MAX_SCORED_LIVES, replace=False))
+        oob = OOBAccumulator(event[lives], exit[lives], units[lives], self.n_trees, scored)
+        jobs = (delayed(self._grow_one)(int(s), X, entry, exit, event, units, n_units, lives) for s in self.tree_seeds_)
+        trees, hazards = [], []
+        for b, grown in enumerate(Parallel(n_jobs=self.n_jobs, prefer="threads", return_as="generator")(jobs)):
+            trees.append(grown.tree)
+            hazards.append(grown.leaf_hazard)
+            if self.bootstrap:
+                oob.add(grown.life_risk, bootstrap_draw(int(self.tree_seeds_[b]), n_units)[0])
+        self._set_trees(trees, hazards)
+        self.oob_risk_ = oob.risk() if self.bootstrap else np.full(len(lives), np.nan)
+        self.oob_concordance_ = oob.curve[-1][1] if oob.curve else float("nan")
+        self.oob_curve_ = pd.DataFrame(oob.curve, columns=["trees", "oob_concordance", "lives_scored"])
+        self.n_training_units_ = n_units
+        return self
+
+    def _draw(self, seed: int, n_units: int) -> tuple[np.ndarray, int]:
+        counts, tree_seed = bootstrap_draw(seed, n_units)
+        return (counts if self.bootstrap else np.ones(n_units, np.int32)), tree_seed
+
+    def _grow_one(self, seed, X, entry, exit, event, units, n_units, lives) -> _GrownTree:
+        counts, tree_seed = self._draw(seed, n_units)
+        weights = counts[units].astype(float)
+        tree = grow_tree(X, entry, exit, event, weights, max_features=self._max_features(),
+                         max_depth=self.max_depth, min_events=self.min_events_per_leaf, random_state=tree_seed)
+        rows = np.flatnonzero(weights > 0)
+        leaf = np.zeros(len(X), np.int32)
+        leaf[rows] = apply_tree(tree, X[rows])
+        hazard = leaf_hazards_on_grid(leaf, tree.n_leaves, entry, exit, event, weights, self.grid_)
+        life_risk = hazard.sum(axis=1, dtype=np.float64)[apply_tree(tree, X[lives])]
+        return _GrownTree(tree, hazard, life_risk)
+
+    def _set_trees(self, trees: list[FlatTree], hazards: list[np.ndarray]) -> None:
+        self.trees_ = trees
+        self.leaf_hazards_ = hazards
+        self.leaf_risks_ = [h.sum(axis=1, dtype=np.float64) for h in hazards]
+
+    # -- prediction ----------------------------------------------------------
+    def _encode(self, X: pd.DataFrame) -> np.ndarray:
+        if not hasattr(self, "trees_"):
+            raise ModelError("the forest is not fitted yet; call fit(table) or SurvivalForest.load(folder).")
+        return encode(X, self.covariates_, self.levels_)
+
+    def risk_score(self, X: pd.DataFrame) -> np.ndarray:
+        """Ensemble cumulative hazard summed over the grid ages, shape (n,)."""
+        Xe = self._encode(X)
+        total = np.zeros(len(Xe))
+        for tree, leaf_risk in zip(self.trees_, self.leaf_risks_):
+            total += leaf_risk[apply_tree(tree, Xe)]
+        return total / len(self.trees_)
+
+    def cumulative_hazard_at(self, X: pd.DataFrame, ages: np.ndarray) -> np.ndarray:
+        """``H(age_i | x_i)``, shape (n,); ages in days, shape (n,) (step between grid ages)."""
+        Xe = self._encode(X)
+        column = grid_column(self.grid_, np.broadcast_to(np.asarray(ages, float), (len(Xe),)))
+        inside = column >= 0
+        total = np.zeros(len(Xe))
+        for tree, hazard in zip(self.trees_, self.leaf_hazards_):
+            leaf = apply_tree(tree, Xe[inside])
+            total[inside] += hazard[leaf, column[inside]]
+        return total / len(self.trees_)
+
+    def cumulative_hazard(self, X: pd.DataFrame, times: np.ndarray) -> np.ndarray:
+        """``H(t_j | x_i)`` on a shared age grid, shape (n, m), float64."""
+        Xe = self._encode(X)
+        column = grid_column(self.grid_, np.asarray(times, float))
+        inside = column >= 0
+        out = np.zeros((len(Xe), len(column)))
+        for tree, hazard in zip(self.trees_, self.leaf_hazards_):
+            out[:, inside] += hazard[apply_tree(tree, Xe)][:, column[inside]]
+        return out / len(self.trees_)
+
+    def oob_risk(self, table) -> np.ndarray:
+        """Recompute the OOB risk of each life of the *training* table from the stored trees.
+
+        Shape (n_lives,), lives in the order of their last rows in the table;
+        NaN for a life whose unit was in every bootstrap. Used to check that OOB
+        values use only trees that did not see the unit.
+        """
+        Xe = self._encode(table.X)
+        units = table.unit_codes()
+        lives = last_rows_of_lives(units, table.frame["life"].to_numpy(), table.exit)
+        acc = OOBAccumulator(table.event[lives], table.exit[lives], units[lives], len(self.trees_), np.array([], int))
+        acc.marks = set()
+        for seed, tree, leaf_risk in zip(self.tree_seeds_, self.trees_, self.leaf_risks_):
+            counts, _ = self._draw(int(seed), int(units.max()) + 1)
+            acc.add(leaf_risk[apply_tree(tree, Xe[lives])], counts)
+        return acc.risk()
+
+    @staticmethod
+    def concordance(event: np.ndarray, time: np.ndarray, risk: np.ndarray) -> float:
+        """Harrell's C (scikit-survival's ``concordance_index_censored``)."""
+        return harrell_c(event, time, risk)
+
+    # -- saving ------------------------------------------------------------
+    def save(self, folder: Path) -> list[Path]:
+        """Write ``forest.json`` (settings, covariates, levels, OOB curve) and
+        ``forest_arrays.npz`` (numeric arrays only; read back with
+        ``allow_pickle=False``). Returns the two paths."""
+        folder = Path(folder)
+        nodes = np.array([len(t.feature) for t in self.trees_], np.int64)
+        arrays = {
+            "grid": np.asarray(self.grid_, np.float64),
+            "tree_seeds": np.asarray(self.tree_seeds_, np.int64),
+            "tree_nodes": nodes,
+            "feature": np.concatenate([t.feature for t in self.trees_]),
+            "threshold": np.concatenate([t.threshold for t in self.trees_]),
+            "left": np.concatenate([t.left for t in self.trees_]),
+            "right": np.concatenate([t.right for t in self.trees_]),
+            "missing_left": np.concatenate([t.missing_left for t in self.trees_]),
+            "leaf": np.concatenate([t.leaf for t in self.trees_]),
+            "leaf_hazard": np.concatenate(self.leaf_hazards_, axis=0).astype(np.float32),
+        }
+        buffer = io.BytesIO()
+        np.savez(buffer, **arrays)
+        settings = {
+            "format_version": FORMAT_VERSION, "model": self.name, "settings": self.settings(),
+            "covariates": list(self.covariates_), "levels": self.levels_, "feature_names": self.feature_names_,
+            "oob_concordance": self.oob_concordance_, "oob_curve": self.oob_curve_.to_dict(orient="list"),
+            "n_training_units": self.n_training_units_,
+        }
+        return [_atomic.write_json(folder / SETTINGS_FILE, settings),
+                _atomic.write_bytes(folder / ARRAYS_FILE, buffer.getvalue())]
+
+    @classmethod
+    def load(cls, folder: Path) -> "SurvivalForest":
+        """Read a forest written by :meth:`save`."""
+        folder = Path(folder)
+        try:
+            meta = json.loads((folder / SETTINGS_FILE).read_text(encoding="utf-8"))
+            with np.load(folder / ARRAYS_FILE, allow_pickle=False) as data:
+                arrays = {k: data[k] for k in data.files}
+        except (OSError, ValueError, KeyError) as exc:
+            raise BundleError(f"cannot read the forest in {folder}: {exc}. Re-save the model.") from exc
+        if meta.get("format_version") != FORMAT_VERSION:
+            raise BundleError(f"{folder / SETTINGS_FILE}: format_version {meta.get('format_version')} "
+                              f"is not {FORMAT_VERSION}; refit and save with this wearcast version.")
+        model = cls(**meta["settings"])
+        model.covariates_ = tuple(meta["covariates"])
+        model.levels_ = {k: list(v) for k, v in meta["levels"].items()}
+        model.feature_names_ = list(meta["feature_names"])
+        model.grid_ = arrays["grid"]
+        model.tree_seeds_ = arrays["tree_seeds"]
+        model.oob_concordance_ = meta["oob_concordance"] if meta["oob_concordance"] is not None else math.nan
+        model.oob_curve_ = pd.DataFrame(meta["oob_curve"])
+        model.n_training_units_ = meta["n_training_units"]
+        node_ends = np.cumsum(arrays["tree_nodes"])
+        trees, hazards, leaf_start = [], [], 0
+        for start, end in zip(np.concatenate([[0], node_ends[:-1]]), node_ends):
+            tree = FlatTree(*(arrays[k][start:end] for k in ("feature", "threshold", "left", "right",
+                                                                  "missing_left", "leaf")))
+            trees.append(tree)
+            hazards.append(arrays["leaf_hazard"][leaf_start:leaf_start + tree.n_leaves])
+            leaf_start += tree.n_leaves
+        model._set_trees(trees, hazards)
+        return model
