@@ -1,0 +1,65 @@
+"""``wearcast check CONFIG``: validate an export and show what the life table holds."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import click
+
+from wearcast.cli._common import command_help, library_call
+
+_LABELS = (
+    ("units", "units"),
+    ("lives", "lives"),
+    ("rows", "life-table rows"),
+    ("failures", "failures"),
+    ("suspensions", "suspensions"),
+    ("delayed_entries", "delayed entries"),
+    ("in_service_units", "units in service"),
+    ("time_at_risk_days", "time at risk (days)"),
+    ("as_of", "as of"),
+)
+
+
+def format_summary(summary: dict) -> list[str]:
+    """The summary as aligned ``label  value`` lines (no click here)."""
+    width = max(len(label) for _, label in _LABELS)
+    lines = []
+    for key, label in _LABELS:
+        value = summary.get(key)
+        if isinstance(value, float):
+            value = f"{value:,.1f}"
+        lines.append(f"{label:<{width}}  {value}")
+    lines.append(
+        f"rows in = kept + quarantined: {summary['rows_read']} = {summary['rows_kept']} + "
+        f"{summary['rows_quarantined']}"
+        + (f" + {summary['rows_after_as_of']} after as_of" if summary.get("rows_after_as_of") else "")
+    )
+    for reason, count in summary["quarantined_by_reason"].items():
+        lines.append(f"  {count:>6}  {reason}")
+    lines.append(f"quarantine: {summary['quarantine_path']}")
+    lines.append(f"life table: {summary['life_table_path']}")
+    return lines
+
+
+@click.command(
+    "check",
+    help=command_help(
+        "Read the export named in CONFIG, set aside rows that cannot be used (each with a "
+        "reason, in quarantine.csv) and show what the life table holds.",
+        "wearcast check fleet.toml --out checked/",
+    ),
+)
+@click.argument("config", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path), default=None,
+              help="Folder for quarantine.csv and life_table.csv (default: the config's output.folder).")
+@library_call
+def command(config: Path, out_dir: Path | None) -> None:
+    from wearcast.config import load_config
+    from wearcast.io import check_export
+
+    cfg = load_config(config)
+    target = out_dir if out_dir is not None else cfg.path(cfg.output.folder)
+    summary = check_export(cfg, target)
+    for line in format_summary(summary):
+        click.echo(line)
