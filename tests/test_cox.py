@@ -134,6 +134,11 @@ def test_categorical_one_hot_matches_lifelines_dummies():
     drivers = model.contributions(table.X)
     assert list(drivers.columns) == cols
     np.testing.assert_allclose(drivers.sum(axis=1), np.log(model.risk_score(table.X)), atol=1e-12)
+    # A subset without grade I (a fold or bootstrap sample) keeps pandas' unused
+    # category; the model drops it rather than fitting an all-zero column.
+    subset = table.frame[table.frame["tgrade"] != "I"]
+    sub_model = CoxBaseline().fit(LifeTable.from_frame(subset, cols, categorical=["horTh", "tgrade"]))
+    assert sub_model.levels["tgrade"] == ["II", "III"] and not sub_model.constant_columns
     with pytest.warns(UserWarning, match="IV"):
         scored = table.X.iloc[:3].astype({"tgrade": object})
         scored.loc[scored.index[0], "tgrade"] = "IV"
@@ -164,3 +169,35 @@ def test_errors_and_copy(rossi):
         CoxBaseline().risk_score(rossi.X)
     copy = CoxBaseline(0.2, baseline_ties="efron").unfitted_copy(seed=7)
     assert (copy.penalizer, copy.baseline_ties, copy.seed, copy.baseline) == (0.2, "efron", 7, None)
+
+
+def test_constant_column_is_reported_and_left_at_zero(rossi):
+    # A covariate with one value (e.g. one site in a bootstrap sample) must not break
+    # the fit; the other coefficients stay the published ones (Fox & Weisberg, as above).
+    table = LifeTable.from_frame(rossi.frame.assign(site=3.0), ROSSI_COLS + ["site"])
+    with pytest.warns(UserWarning, match="site"):
+        model = CoxBaseline(penalizer=0.0).fit(table)
+    assert model.constant_columns == ["site"] and model.coefficients[-1] == 0.0
+    np.testing.assert_allclose(model.coefficients[:-1], ROSSI_PUBLISHED, atol=1e-3)
+    # Exact duplicates cannot be separated without a penalty: a ModelError says what to do.
+    dup = LifeTable.from_frame(rossi.frame.assign(prio2=rossi.frame["prio"]), ROSSI_COLS + ["prio2"])
+    with pytest.raises(ModelError, match="penalizer"), warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        CoxBaseline(penalizer=0.0).fit(dup)
+
+
+def test_no_covariates_gives_nelson_aalen_with_entry():
+    # Reference: lifelines NelsonAalenFitter(nelson_aalen_smoothing=False) with entry=
+    # on the MACS data lifelines ships (W entry, T exit, D event).
+    from lifelines import NelsonAalenFitter
+    from lifelines.datasets import load_multicenter_aids_cohort_study
+
+    data = load_multicenter_aids_cohort_study()
+    frame = pd.DataFrame({"unit_id": np.arange(len(data)).astype(str), "entry_age": data["W"].to_numpy(),
+                          "exit_age": data["T"].to_numpy(), "failed": data["D"].astype(bool).to_numpy()})
+    model = CoxBaseline().fit(LifeTable.from_frame(frame))
+    naf = NelsonAalenFitter(nelson_aalen_smoothing=False).fit(data["T"], data["D"], entry=data["W"])
+    times = naf.cumulative_hazard_.index.to_numpy(float)
+    X = pd.DataFrame(index=range(times.size))
+    np.testing.assert_allclose(model.cumulative_hazard_at(X, times), naf.cumulative_hazard_.iloc[:, 0], rtol=1e-12)
+    assert_valid_probability(model.fail_probability(X, times, 1.0))

@@ -57,6 +57,7 @@ class CoxBaseline(SurvivalModel):
         self.covariates: list[str] = []
         self.levels: dict[str, list[str]] = {}  # categorical -> levels; the first is the reference
         self.design_columns: list[str] = []
+        self.constant_columns: list[str] = []  # design columns with one value in training (coefficient 0)
         self.coefficients = np.zeros(0)  # (p,) per design column
         self.means = np.zeros(0)  # (p,) training means of the design
         self.baseline: BaselineHazard | None = None
@@ -104,12 +105,15 @@ class CoxBaseline(SurvivalModel):
         return np.column_stack(blocks) if blocks else np.zeros((len(X), 0))
 
     def _learn_levels(self, X: pd.DataFrame, categorical) -> None:
-        """Remember each categorical covariate's levels (pandas category order, else sorted)."""
+        """Remember each categorical covariate's levels that occur in the data
+        (pandas category order, else sorted). Unused categories of a subset
+        (a fold, a bootstrap sample) would give all-zero columns, so they are left out."""
         self.levels = {}
         for col in self.covariates:
             values = X[col]
             if isinstance(values.dtype, pd.CategoricalDtype):
-                self.levels[col] = [str(c) for c in values.cat.categories]
+                present = set(values.dropna().unique())
+                self.levels[col] = [str(c) for c in values.cat.categories if c in present]
             elif col in categorical or values.dtype == object:
                 self.levels[col] = sorted({str(v) for v in values.dropna()})
 
@@ -125,9 +129,6 @@ class CoxBaseline(SurvivalModel):
     # -- fitting --------------------------------------------------------------
     def fit(self, table) -> "CoxBaseline":
         """Fit on a :class:`wearcast.LifeTable` (rows ``(entry_age, exit_age]``, days)."""
-        from lifelines import CoxPHFitter
-        from lifelines.exceptions import ConvergenceError
-
         entry, exit, event = table.entry, table.exit, table.event
         if not event.any():
             raise ModelError(
@@ -138,39 +139,56 @@ class CoxBaseline(SurvivalModel):
         self._learn_levels(table.X, set(table.categorical))
         Z = self._encode(table.X, learn=True)
         self.means = Z.mean(axis=0) if Z.shape[1] else np.zeros(0)
-        if Z.shape[1] == 0:
-            self.coefficients = np.zeros(0)
-            self.log_likelihood = None
-        else:
-            frame = pd.DataFrame(Z, columns=[f"x{j}" for j in range(Z.shape[1])])
-            frame["_entry"], frame["_exit"], frame["_event"] = entry, exit, event.astype(int)
-            fitter = CoxPHFitter(penalizer=self.penalizer)
-            try:
-                with warnings.catch_warnings():
-                    # lifelines warns about late entry to suggest what we do anyway
-                    warnings.filterwarnings("ignore", message=".*entry.*")
-                    fitter.fit(
-                        frame,
-                        duration_col="_exit",
-                        event_col="_event",
-                        entry_col="_entry",
-                        # lifelines' default stopping rule leaves ~4e-5 on the
-                        # Stanford heart data; a tighter one costs a Newton step or two
-                        fit_options={"precision": 1e-10},
-                    )
-            except (ConvergenceError, np.linalg.LinAlgError, ValueError) as exc:
-                constant = [n for n, s in zip(self.design_columns, Z.std(axis=0)) if s == 0]
-                hint = f" Constant column(s): {', '.join(constant)} — drop them." if constant else ""
-                raise ModelError(
-                    f"cox: lifelines could not fit the model ({type(exc).__name__}: {str(exc).splitlines()[0]}). "
-                    f"Try a larger penalizer (now {self.penalizer}) or drop constant or nearly collinear "
-                    f"covariates.{hint}"
-                ) from exc
-            self.coefficients = fitter.params_.to_numpy(float)
-            self.log_likelihood = float(fitter.log_likelihood_)
+        # A column constant in this table (a covariate with one value in a fold or a
+        # bootstrap sample) carries no information and breaks lifelines'
+        # standardisation: it gets coefficient 0 and is reported, not fitted.
+        spread = Z.max(axis=0) - Z.min(axis=0) if Z.shape[1] else np.zeros(0)
+        varying = spread > 0
+        self.constant_columns = [n for n, v in zip(self.design_columns, varying) if not v]
+        if self.constant_columns:
+            warnings.warn(
+                f"cox: design column(s) {', '.join(self.constant_columns)} take one value in this life "
+                "table; their coefficient is set to 0.",
+                stacklevel=2,
+            )
+        self.coefficients = np.zeros(Z.shape[1])
+        self.log_likelihood = None
+        if varying.any():
+            fitted = self._fit_lifelines(Z[:, varying], entry, exit, event)
+            self.coefficients[varying] = fitted.params_.to_numpy(float)
+            self.log_likelihood = float(fitted.log_likelihood_)
         eta = (Z - self.means) @ self.coefficients
         self.baseline = BaselineHazard.estimate(entry, exit, event, eta, ties=self.baseline_ties)
         return self
+
+    def _fit_lifelines(self, Z: np.ndarray, entry, exit, event):
+        from lifelines import CoxPHFitter
+        from lifelines.exceptions import ConvergenceError
+
+        names = [n for n in self.design_columns if n not in self.constant_columns]
+        frame = pd.DataFrame(Z, columns=names)
+        frame["_entry"], frame["_exit"], frame["_event"] = entry, exit, event.astype(int)
+        fitter = CoxPHFitter(penalizer=self.penalizer)
+        try:
+            with warnings.catch_warnings():
+                # lifelines warns about late entry to suggest what we do anyway
+                warnings.filterwarnings("ignore", message=".*entry.*")
+                fitter.fit(
+                    frame,
+                    duration_col="_exit",
+                    event_col="_event",
+                    entry_col="_entry",
+                    # lifelines' default stopping rule leaves ~4e-5 on the
+                    # Stanford heart data; a tighter one costs a Newton step or two
+                    fit_options={"precision": 1e-10},
+                )
+        except (ConvergenceError, np.linalg.LinAlgError, ValueError) as exc:
+            raise ModelError(
+                f"cox: lifelines could not fit the model ({type(exc).__name__}: {str(exc).splitlines()[0]}). "
+                f"Try a larger penalizer (now {self.penalizer}) or drop nearly collinear covariates "
+                f"among {', '.join(names)}."
+            ) from exc
+        return fitter
 
     # -- predictions ----------------------------------------------------------
     @property
@@ -227,6 +245,7 @@ class CoxBaseline(SurvivalModel):
             "covariates": list(self.covariates),
             "levels": {k: list(v) for k, v in self.levels.items()},
             "design_columns": list(self.design_columns),
+            "constant_columns": list(self.constant_columns),
             "coefficients": [float(b) for b in self.coefficients],
             "means": [float(m) for m in self.means],
             "log_likelihood": self.log_likelihood,
@@ -242,6 +261,7 @@ class CoxBaseline(SurvivalModel):
             model.covariates = list(data["covariates"])
             model.levels = {k: list(v) for k, v in data["levels"].items()}
             model.design_columns = list(data["design_columns"])
+            model.constant_columns = list(data["constant_columns"])
             model.coefficients = np.asarray(data["coefficients"], float)
             model.means = np.asarray(data["means"], float)
             model.log_likelihood = data["log_likelihood"]
