@@ -284,7 +284,7 @@ def build_from_intervals(rows: pd.DataFrame, settings: BuildSettings, *, dated: 
     frame = order[keep].copy()
     for _, r in frame.iterrows():
         out.kept.add(_key(r))
-    last = frame.groupby("unit_id", sort=False)["exit_age"].transform("max") == frame["exit_age"]
+    last = frame.groupby(["unit_id", "life"], sort=False)["exit_age"].transform("max") == frame["exit_age"]
     top_life = frame.groupby("unit_id", sort=False)["life"].transform("max") == frame["life"]
     in_service = last & top_life & ~frame["failed"].astype(bool)
     if dated:
