@@ -179,10 +179,13 @@ def test_stanford_delayed_entry_matches_r_and_lifelines():
     from lifelines.datasets import load_stanford_heart_transplants
 
     heart = load_stanford_heart_transplants()
-    # lifelines' copy has no start >= stop rows (checked here); R's Surv() turns
-    # such rows into NA with a warning and coxph drops them, and our kernel
-    # refuses them, so nothing needs handling for this dataset.
+    # Zero-length rows: lifelines' copy has none (checked here). Like R's `heart`
+    # data it already moves subject 38's transplant (same day as death) half a
+    # day earlier, giving rows (0, 4.5] and (4.5, 5]. Our kernel refuses
+    # start >= stop with a ValueError (R's Surv() makes such rows NA, with a
+    # warning, and coxph drops them), so nothing needs handling here.
     assert (heart["start"] < heart["stop"]).all()
+    assert heart.loc[heart["id"] == 38, "stop"].tolist() == [4.5, 5.0]
     cols = ["age", "year", "surgery", "transplant"]
     X = heart[cols].to_numpy(float)
     beta = fit_linear_cox(
