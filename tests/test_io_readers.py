@@ -1,0 +1,118 @@
+"""Readers: CSV (BOM, delimiter, decimal comma, line numbers), Excel and Parquet round trips,
+and the value parsers (dates, flags, ids, numbers)."""
+
+from __future__ import annotations
+
+import pandas as pd
+import pytest
+
+from wearcast.exceptions import DataError, InputMissingError
+from wearcast.io import _parse
+from wearcast.io._readers import read_export_file, sniff_delimiter
+
+TABLE = pd.DataFrame({
+    "unit_id": ["00042", "00107", "A-9"],
+    "install_date": ["2021-03-01", "2020-12-31", "2019-07-15"],
+    "power_kw": ["5.5", "7", ""],
+})
+
+
+def _cells(raw):
+    return raw.frame[list(raw.columns)].reset_index(drop=True)
+
+
+def test_csv_with_bom_semicolons_and_decimal_comma(tmp_path):
+    path = tmp_path / "register.csv"
+    text = "unit_id;install_date;power_kw\r\n00042;2021-03-01;5,5\r\n\r\n00107;2020-12-31;7\r\n"
+    path.write_bytes(b"\xef\xbb\xbf" + text.encode("utf-8"))
+    raw = read_export_file(path)
+    assert raw.columns == ("unit_id", "install_date", "power_kw")  # BOM not glued to the first name
+    assert raw.frame["unit_id"].tolist() == ["00042", "00107"]  # leading zeros kept
+    assert raw.frame["_line"].tolist() == [2, 4]  # physical lines, header = 1, blank line skipped
+    values, bad = _parse.parse_numbers(raw.frame["power_kw"], decimal=",")
+    assert values.tolist() == [5.5, 7.0] and not bad.any()
+
+
+def test_csv_line_numbers_follow_multiline_quoted_cells(tmp_path):
+    path = tmp_path / "events.csv"
+    path.write_text('unit_id,note\n1,"two\nlines"\n2,x\n3\n', encoding="utf-8")
+    raw = read_export_file(path)
+    assert raw.frame["_line"].tolist() == [2, 4, 5]
+    assert raw.frame["_malformed"].tolist() == ["", "", "row has 1 fields, the header has 2"]
+
+
+def test_sniffed_delimiters():
+    assert sniff_delimiter("a;b;c\n1;2;3\n") == ";"
+    assert sniff_delimiter("a\tb\n1\t2\n") == "\t"
+    assert sniff_delimiter("a,b\n1,2\n") == ","
+
+
+def test_excel_round_trip_keeps_text_and_sheet_rows(tmp_path):
+    path = tmp_path / "register.xlsx"
+    with pd.ExcelWriter(path, engine="openpyxl") as writer:
+        pd.DataFrame({"x": ["other"]}).to_excel(writer, sheet_name="notes", index=False)
+        TABLE.to_excel(writer, sheet_name="units", index=False)
+    raw = read_export_file(path, sheet="units")
+    pd.testing.assert_frame_equal(_cells(raw), TABLE)
+    assert raw.frame["_line"].tolist() == [2, 3, 4]
+    with pytest.raises(DataError, match="input.sheet"):
+        read_export_file(path, sheet="missing")
+
+
+def test_parquet_round_trip(tmp_path):
+    path = tmp_path / "register.parquet"
+    typed = TABLE.assign(install_date=pd.to_datetime(TABLE["install_date"]))
+    typed.to_parquet(path)
+    raw = read_export_file(path)
+    pd.testing.assert_frame_equal(_cells(raw), TABLE)
+    assert raw.frame["_line"].tolist() == [1, 2, 3]
+
+
+def test_missing_file_and_bad_header(tmp_path):
+    with pytest.raises(InputMissingError, match="does not exist"):
+        read_export_file(tmp_path / "nope.csv")
+    (tmp_path / "dup.csv").write_text("unit_id,unit_id\n1,2\n")
+    with pytest.raises(DataError, match="appears twice"):
+        read_export_file(tmp_path / "dup.csv")
+
+
+def test_flags_accept_only_0_1_true_false():
+    values, bad = _parse.parse_flags(pd.Series(["1", "0", "TRUE", "false", "yes", "no", "", "1.0"]))
+    assert bad.tolist() == [False, False, False, False, True, True, True, True]
+    assert values[:4].tolist() == [True, False, True, False]
+
+
+def test_mangled_and_missing_ids():
+    reasons = _parse.id_problems(pd.Series(["1.23E+05", "4,5e3", "00042", " ", "E-101"]))
+    assert [r.split(" (")[0] for r in reasons] == ["unit id in scientific notation", "unit id in scientific notation",
+                                                    "", "missing unit id", ""]
+
+
+def _sample(values):
+    return _parse.DateSample("register.csv", "install_date", pd.Series(values), pd.Series(range(2, 2 + len(values))))
+
+
+def test_day_month_order_is_settled_by_values_or_refused():
+    assert _parse.day_first_from_values([_sample(["03/04/2021", "25/04/2021"])]) is True
+    assert _parse.day_first_from_values([_sample(["03/04/2021", "04/25/2021"])]) is False
+    assert _parse.day_first_from_values([_sample(["2021-04-03"])]) is None
+    with pytest.raises(DataError, match="no date in the export settles which. Set input.date_format"):
+        _parse.day_first_from_values([_sample(["03/04/2021", "05/06/2021"])])
+    with pytest.raises(DataError, match="mixes date orders"):
+        _parse.day_first_from_values([_sample(["25/04/2021", "04/25/2021"])])
+
+
+def test_dates_parse_iso_day_first_and_explicit_format():
+    parsed, bad = _parse.parse_dates(pd.Series(["2021-02-28", "2021-02-30", "", "28.02.2021 13:30", "soon"]),
+                                     day_first=True)
+    assert bad.tolist() == [False, True, False, False, True]
+    assert parsed[3] == pd.Timestamp("2021-02-28 13:30")
+    parsed, bad = _parse.parse_dates(pd.Series(["02/28/21"]), date_format="%m/%d/%y")
+    assert parsed[0] == pd.Timestamp("2021-02-28") and not bad.any()
+
+
+def test_numbers_reject_text_and_ambiguous_separators():
+    values, bad = _parse.parse_numbers(pd.Series(["1.5", "", "high", "inf"]))
+    assert bad.tolist() == [False, False, True, True]
+    _, bad = _parse.parse_numbers(pd.Series(["1.234,5"]), decimal=",")
+    assert bad.tolist() == [True]
