@@ -65,7 +65,8 @@ class CoxBaseline(SurvivalModel):
 
     # -- design ---------------------------------------------------------------
     def _encode(self, X: pd.DataFrame, *, learn: bool) -> np.ndarray:
-        """Design matrix (n, p): numeric covariates, then one-hot levels (first dropped)."""
+        """Design matrix (n, p) in covariate order: numbers as they are, a categorical as one
+        0/1 column per level except the first (the reference)."""
         missing = [c for c in self.covariates if c not in X.columns]
         if missing:
             raise ModelError(
