@@ -1,0 +1,137 @@
+"""``wearcast check`` run in-process on hand-made broken exports (tests/data/broken):
+exit code and the exact message, then the files it left behind."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pandas as pd
+from click.testing import CliRunner
+
+from wearcast.cli.check import command
+
+DATA = Path(__file__).parent / "data" / "broken"
+
+
+def run(tmp_path: Path, toml: str, out: Path | None = None):
+    config = tmp_path / "fleet.toml"
+    config.write_text(toml, encoding="utf-8")
+    out = out if out is not None else tmp_path / "out"
+    return CliRunner().invoke(command, [str(config), "--out", str(out)])
+
+
+def inputs(register: str, events: str, extra: str = "") -> str:
+    return f'[input]\nregister = "{DATA / register}"\nevents = "{DATA / events}"\n{extra}'
+
+
+def test_good_export_prints_summary_and_writes_files(tmp_path):
+    result = run(tmp_path, inputs("register_ambiguous.csv", "events_ambiguous.csv", 'date_format = "%d/%m/%Y"\n')
+                 + "[fleet]\nas_of = 2022-06-01\n")
+    assert result.exit_code == 0, result.stderr
+    out = tmp_path / "out"
+    assert result.stdout.splitlines() == [
+        "units                3",
+        "lives                4",  # P-101 failed and was renewed (renewal = "replace")
+        "life-table rows      4",
+        "failures             1",
+        "suspensions          3",
+        "delayed entries      0",
+        "units in service     3",
+        # day counts by hand: P-101 2021-04-03 -> 2022-06-01 = 424, P-102 2021-06-05 -> = 361,
+        # P-103 2021-12-11 -> = 172
+        "time at risk (days)  957.0",
+        "as of                2022-06-01",
+        "rows in = kept + quarantined: 4 = 4 + 0",
+        f"quarantine: {out / 'quarantine.csv'}",
+        f"life table: {out / 'life_table.csv'}",
+    ]
+    table = pd.read_csv(out / "life_table.csv", dtype={"unit_id": str})
+    assert table.loc[table["failed"], "exit_age"].tolist() == [274.0]
+    assert list(pd.read_csv(out / "quarantine.csv").columns) == [
+        "source_file", "line", "column", "value", "reason", "original_row"]
+
+
+def test_missing_column_exits_65_naming_the_columns(tmp_path):
+    result = run(tmp_path, inputs("register_no_install.csv", "events_ok.csv"))
+    assert result.exit_code == 65
+    assert result.stderr == (
+        "error: register_no_install.csv: missing required column(s) 'install_date' (columns.install_date); "
+        "found 'unit_id', 'installed_on', 'site'. Rename the columns in the export or map them in the "
+        "config's [columns] table.\n")
+
+
+def test_column_mapping_fixes_the_missing_column(tmp_path):
+    result = run(tmp_path, inputs("register_no_install.csv", "events_ok.csv")
+                 + '[columns]\ninstall_date = "installed_on"\n[fleet]\nas_of = 2022-06-01\n')
+    assert result.exit_code == 0, result.stderr
+
+
+def test_unknown_config_key_exits_78(tmp_path):
+    result = run(tmp_path, inputs("register_no_install.csv", "events_ok.csv") + "[fleet]\nmax_bad = 0.1\n")
+    assert result.exit_code == 78
+    assert result.stderr == (
+        f"error: {tmp_path / 'fleet.toml'}: unknown key 'max_bad' in [fleet]; known keys: as_of, categorical, "
+        "covariates, decommission_kinds, failure_kinds, group_by, max_bad_share, records_start, renewal, "
+        "replacement_kinds.\n")
+
+
+def test_missing_input_file_exits_66(tmp_path):
+    result = run(tmp_path, inputs("not_there.csv", "events_ok.csv"))
+    assert result.exit_code == 66
+    assert result.stderr == (
+        f"error: input file {DATA / 'not_there.csv'} does not exist. Check the path in the config's [input] "
+        "table (relative paths start from the config file's folder).\n")
+
+
+def test_too_many_bad_rows_exits_65_and_writes_quarantine(tmp_path):
+    result = run(tmp_path, inputs("register_mangled.csv", "events_mangled.csv"))
+    quarantine = tmp_path / "out" / "quarantine.csv"
+    assert result.exit_code == 65
+    assert result.stderr == (
+        "error: 4 of 8 rows (50.0%) were rejected, above fleet.max_bad_share = 5.0%. Most common reason: "
+        "unit id in scientific notation (a spreadsheet turned it into a number); re-export the id column as "
+        "text (3 rows), first at events_mangled.csv line 4, column unit_id (value '1.23E+05'). Fix the export "
+        f"(or raise fleet.max_bad_share); rejected rows are listed in {quarantine}.\n"
+        f"rejected rows and reasons: {quarantine}\n")
+    q = pd.read_csv(quarantine, dtype=str)
+    assert q[["source_file", "line", "column", "value"]].values.tolist() == [
+        ["events_mangled.csv", "4", "unit_id", "1.23E+05"],
+        ["events_mangled.csv", "5", "event_kind", "breakdown"],
+        ["register_mangled.csv", "2", "unit_id", "1.23E+05"],
+        ["register_mangled.csv", "3", "unit_id", "4.56E+05"],
+    ]
+    assert q["reason"].str.startswith("unknown event kind").sum() == 1
+    assert q["original_row"].iloc[1] == "P-104,2022-07-01,breakdown,"
+
+
+def test_raising_max_bad_share_lets_the_run_through(tmp_path):
+    result = run(tmp_path, inputs("register_mangled.csv", "events_mangled.csv")
+                 + "[fleet]\nmax_bad_share = 0.6\nas_of = 2023-01-01\n")
+    assert result.exit_code == 0, result.stderr
+    assert "rows in = kept + quarantined: 8 = 4 + 4" in result.stdout.splitlines()
+
+
+def test_ambiguous_dates_exit_65_and_suggest_date_format(tmp_path):
+    result = run(tmp_path, inputs("register_ambiguous.csv", "events_ambiguous.csv"))
+    assert result.exit_code == 65
+    assert result.stderr == (
+        "error: register_ambiguous.csv: line 2, column install_date: date '03/04/2021' reads both as "
+        "day/month and as month/day, and no date in the export settles which. Set input.date_format in the "
+        'config, for example date_format = "%d/%m/%Y" (day first) or "%m/%d/%Y" (month first).\n')
+
+
+def test_unwritable_output_exits_73(tmp_path):
+    blocker = tmp_path / "a_file"
+    blocker.write_text("not a folder")
+    result = run(tmp_path, inputs("register_ambiguous.csv", "events_ambiguous.csv", 'date_format = "%d/%m/%Y"\n'),
+                 out=blocker / "out")
+    assert result.exit_code == 73
+    assert result.stderr == (
+        f"error: cannot create output folder {blocker / 'out'}: Not a directory. "
+        "Choose a folder you can write to.\n")
+
+
+def test_help_names_the_command_and_the_caution():
+    result = CliRunner().invoke(command, ["--help"])
+    assert result.exit_code == 0
+    assert "quarantine.csv" in result.output and "Caution:" in result.output
