@@ -13,12 +13,14 @@ from sksurv.ensemble import RandomSurvivalForest
 from sksurv.metrics import concordance_index_censored
 
 from wearcast import LifeTable
-from wearcast.config import ForestSection
+from wearcast.config import ForestSection, load_config
 from wearcast.exceptions import ConfigError, ModelError
+from wearcast.io import load_export
 from wearcast.models._forest_grow import apply_tree, grow_tree, martingale_residuals
 from wearcast.models._forest_leaves import failure_age_grid, leaf_hazards_on_grid
 from wearcast.models._forest_oob import bootstrap_draw, harrell_c
 from wearcast.models.forest import SurvivalForest
+from wearcast.scenario import generate_scenario
 
 
 def _macs() -> pd.DataFrame:
@@ -31,7 +33,7 @@ def _table(frame: pd.DataFrame, covariates, categorical=()) -> LifeTable:
 
 
 def _truncated_weibull(n_units: int, seed: int) -> LifeTable:
-    """Stand-in left-truncated Weibull fleet (shape 2, scale 1000 days, log HR 0.5 per sd
+    """Small left-truncated Weibull sample for fast kernel checks (shape 2, scale 1000 days, log HR 0.5 per sd
     of ``x``; ``z`` is noise); units that failed before their entry age are never seen."""
     rng = np.random.default_rng(seed)
     n = 4 * n_units
@@ -128,23 +130,33 @@ def test_single_unsplit_tree_equals_lifelines_nelson_aalen_with_entry():
     np.testing.assert_allclose(got, expected, rtol=1e-6)
 
 
-def test_average_survival_follows_delayed_entry_kaplan_meier():
-    # Source: lifelines KaplanMeierFitter with entry (reference implementation).
-    # Stand-in left-truncated sample (wearcast.scenario preferred once available).
-    # Measured: with entry the largest gap over the 10-90 % failure-age deciles is
-    # about 0.03; with entry set to 0 it is about 0.2 (survival too high).
-    table = _truncated_weibull(2000, seed=7)
+@pytest.fixture(scope="module")
+def scenario_table(tmp_path_factory) -> LifeTable:
+    """The invented demo fleet (2,000 positions, records start 5 years before the
+    export, so most units enter late), read through the real export loader."""
+    files = generate_scenario(tmp_path_factory.mktemp("fleet"), n_units=2000, seed=7)
+    return load_export(load_config(files.config)).table
+
+
+def test_average_survival_follows_delayed_entry_kaplan_meier(scenario_table):
+    # Source: lifelines KaplanMeierFitter with entry (reference implementation), on the
+    # invented scenario (about 35,000 rows, 2,200 lives, 1,370 delayed entries, 207 failures).
+    # Measured: averaged over the training rows, the largest gap at the 10..90 % failure-age
+    # deciles is 0.016 with entry; with entry set to 0 it is 0.26 (risk sets padded with
+    # units not yet watched, so survival is far too high).
+    table = scenario_table
     km = KaplanMeierFitter().fit(table.exit, table.event, entry=table.entry)
     ages = np.quantile(table.exit[table.event], np.linspace(0.1, 0.9, 9))
     reference = km.survival_function_at_times(ages).to_numpy()
-    model = SurvivalForest(n_trees=30, seed=3, n_jobs=1).fit(table)
+    model = SurvivalForest(n_trees=20, seed=3, n_jobs=2).fit(table)
     gap = np.abs(model.survival(table.X, ages).mean(axis=0) - reference).max()
-    assert gap < 0.045
+    assert gap < 0.04
     ignored = table.frame.copy()
-    ignored["entry_age"] = 0.0
-    naive = SurvivalForest(n_trees=30, seed=3, n_jobs=1).fit(_table(ignored, ["x", "z"]))
+    ignored["entry_age"] = 0.0  # rows of one life now overlap, so skip re-validation
+    naive_table = LifeTable(ignored, table.covariates, table.categorical)
+    naive = SurvivalForest(n_trees=20, seed=3, n_jobs=2).fit(naive_table)
     naive_gap = np.abs(naive.survival(table.X, ages).mean(axis=0) - reference).max()
-    assert naive_gap > 0.12
+    assert naive_gap > 0.15
 
 
 def test_curves_and_conditional_probabilities_are_valid():
