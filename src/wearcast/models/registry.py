@@ -17,7 +17,6 @@ MODEL_CLASSES: dict[str, str] = {
     "boosted": "wearcast.models.boosted:BoostedSurvivalTrees",
     "cox": "wearcast.models.cox:CoxBaseline",
     "forest": "wearcast.models.forest:SurvivalForest",
-    "forest": "wearcast.models.forest:SurvivalForest",
 }
 
 
