@@ -219,6 +219,8 @@ def time_dependent_auc(
     out = {}
     lo, hi = test_exit.min(initial=np.inf), test_exit.max(initial=-np.inf)
     train_max = train_exit.max(initial=-np.inf)
+    if len(horizons_days):
+        test_exit, test_event = _end_follow_up(test_exit, test_event, max(map(float, horizons_days)))
     for h in horizons_days:
         h = float(h)
         usable = lo <= h < hi and h < train_max and (test_event & (test_exit <= h)).any() and (test_exit > h).any()
@@ -260,6 +262,7 @@ def integrated_brier(
     keep &= times_days < train_exit.max(initial=-np.inf)
     if keep.sum() < 2:
         return float("nan")
+    test_exit, test_event = _end_follow_up(test_exit, test_event, float(times_days[keep].max()))
     try:
         return float(
             integrated_brier_score(
@@ -435,6 +438,18 @@ def _arrays(exit, event, values):
             f"{exit.shape}, {event.shape}, {values.shape}"
         )
     return exit, event, values
+
+
+def _end_follow_up(exit: np.ndarray, event: np.ndarray, last: float) -> tuple[np.ndarray, np.ndarray]:
+    """Suspend everyone still running just after ``last`` days.
+
+    Metrics evaluated at ages up to ``last`` do not depend on what happens
+    later, but scikit-survival computes censoring weights for every failure and
+    stops when the censoring survival is 0 beyond the training follow-up.
+    """
+    cut = last + 1e-6 * max(1.0, abs(last))
+    late = exit > cut
+    return np.where(late, cut, exit), event & ~late
 
 
 def _surv(event: np.ndarray, exit: np.ndarray) -> np.ndarray:

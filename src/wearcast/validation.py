@@ -1,0 +1,410 @@
+"""Unit-grouped cross-validation and the side-by-side comparison with the Cox baseline.
+
+What is scored: *episodes* (:func:`score_episodes`). An episode is a run of
+rows of one life that ends in a failure or at the life's last row; it starts
+at the first row of the life or right after the previous failure (under a
+``repair`` renewal one life has one episode per failure). Scored values:
+``entry`` = the episode's first entry age, ``exit`` = its last exit age,
+``event`` = whether it ends in a failure, covariates = those of its last row.
+Under ``replace`` renewal an episode is exactly one life.
+
+Every model is refitted per fold on the training units only (all rows of a
+unit are in one fold) and scored on the held-out units' episodes. Per fold:
+Harrell's C and the truncation-aware C (age scale), Uno's C up to τ (one τ
+for the whole run, so the column name can carry it), cumulative/dynamic AUC
+and horizon calibration on the scale "days since the episode's entry", and the
+integrated Brier score. See ``docs/metrics.md``.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Mapping
+
+import numpy as np
+import pandas as pd
+
+from wearcast import _atomic
+from wearcast._metrics_concordance import truncated_concordance_counts
+from wearcast.exceptions import ModelError
+from wearcast.lifetable import LifeTable
+from wearcast.metrics import (
+    IPCW_ENTRY_NOTE,
+    choose_tau,
+    horizon_calibration,
+    integrated_brier,
+    percentile_interval,
+    time_dependent_auc,
+    unit_resamples,
+    uno_c,
+)
+from wearcast.models.base import SurvivalModel
+
+BASELINE = "cox"
+
+
+# -- what is scored ------------------------------------------------------------------
+@dataclass(frozen=True)
+class Episodes:
+    """Scored episodes of a life table; every array has shape (n_episodes,).
+
+    ``rows``: position of the episode's last row in the table (its covariates
+    are used); ``entry``/``exit``: ages in days; ``event``: ends in a failure;
+    ``unit_id``/``life``: whose episode it is.
+    """
+
+    rows: np.ndarray
+    entry: np.ndarray
+    exit: np.ndarray
+    event: np.ndarray
+    unit_id: np.ndarray
+    life: np.ndarray
+
+    def __len__(self) -> int:
+        return len(self.rows)
+
+    def subset(self, mask: np.ndarray) -> "Episodes":
+        return Episodes(*(getattr(self, f)[mask] for f in ("rows", "entry", "exit", "event", "unit_id", "life")))
+
+
+def score_episodes(table: LifeTable) -> Episodes:
+    """One scored row per episode of ``table`` (see the module docstring)."""
+    f = table.frame
+    if len(f) == 0:
+        empty = np.zeros(0)
+        return Episodes(empty.astype(np.int64), empty, empty, empty.astype(bool), empty.astype(object), empty)
+    order = np.lexsort((f["entry_age"].to_numpy(), f["life"].to_numpy(), f["unit_id"].to_numpy()))
+    unit = f["unit_id"].to_numpy()[order]
+    life = f["life"].to_numpy()[order]
+    failed = f["failed"].to_numpy(bool)[order]
+    new_life = np.ones(len(order), bool)
+    new_life[1:] = (unit[1:] != unit[:-1]) | (life[1:] != life[:-1])
+    starts = new_life.copy()
+    starts[1:] |= failed[:-1]
+    first = np.flatnonzero(starts)
+    last = np.concatenate([first[1:] - 1, [len(order) - 1]])
+    rows = order[last]
+    return Episodes(
+        rows=rows,
+        entry=f["entry_age"].to_numpy(float)[order[first]],
+        exit=f["exit_age"].to_numpy(float)[rows],
+        event=failed[last],
+        unit_id=unit[last].astype(str),
+        life=life[last],
+    )
+
+
+# -- folds ---------------------------------------------------------------------------
+def grouped_folds(table: LifeTable, k: int, seed: int) -> list[tuple[np.ndarray, np.ndarray]]:
+    """``k`` (train_rows, test_rows) pairs of row positions; all rows of a unit share a fold.
+
+    Units are shuffled by ``seed`` and dealt round-robin, so fold sizes differ
+    by at most one unit. Raises ``ValueError`` when there are fewer units than folds.
+    """
+    codes = table.unit_codes()
+    n_units = int(codes.max()) + 1 if len(codes) else 0
+    if k < 2 or n_units < k:
+        raise ValueError(f"cannot make {k} unit-grouped folds from {n_units} units; use 2 <= folds <= units")
+    fold_of_unit = np.empty(n_units, dtype=np.int64)
+    fold_of_unit[np.random.default_rng(seed).permutation(n_units)] = np.arange(n_units) % k
+    fold = fold_of_unit[codes]
+    return [(np.flatnonzero(fold != i), np.flatnonzero(fold == i)) for i in range(k)]
+
+
+# -- cross-validation ------------------------------------------------------------------
+@dataclass
+class FoldScores:
+    """Held-out arrays of one fold and one model (episodes of the test units)."""
+
+    entry: np.ndarray
+    exit: np.ndarray
+    event: np.ndarray
+    units: np.ndarray
+    risk: np.ndarray
+    prob: dict[int, np.ndarray]  # horizon_days -> P(fail within h of entry), shape (n,)
+    survival: np.ndarray  # S(t | x) on CVResult.brier_times, shape (n, m)
+    train_exit: np.ndarray
+    train_event: np.ndarray
+    train_window: np.ndarray  # training episodes' exit - entry (days), for the AUC's censoring weights
+
+
+@dataclass
+class CVResult:
+    """Per-fold metrics, their mean ± standard error, and the held-out scores.
+
+    ``per_fold``: one row per (fold, model) with the metric columns;
+    ``summary``: one row per model with ``<metric>`` (mean over folds; counts
+    are summed) and ``<metric>_se`` (standard error over folds);
+    ``scores[model][fold]``: the :class:`FoldScores` behind them;
+    ``folds``: the (train_rows, test_rows) pairs used.
+    """
+
+    models: list[str]
+    k: int
+    seed: int
+    horizons_days: list[int]
+    tau_days: float
+    brier_times: np.ndarray
+    per_fold: pd.DataFrame
+    summary: pd.DataFrame
+    scores: dict[str, list[FoldScores]] = field(repr=False)
+    folds: list[tuple[np.ndarray, np.ndarray]] = field(repr=False, default_factory=list)
+    notes: list[str] = field(default_factory=list)
+
+
+def _uno_column(tau: float) -> str:
+    return f"c_uno_tau_{int(round(tau))}d"
+
+
+def metric_columns(horizons_days, tau_days: float) -> list[str]:
+    """Metric column names in output order."""
+    cols = ["c_harrell", "c_truncation", _uno_column(tau_days)]
+    cols += [f"auc_{h}d" for h in horizons_days]
+    cols += ["brier_integrated"]
+    for h in horizons_days:
+        cols += [f"expected_failures_{h}d", f"observed_failures_{h}d", f"calibration_slope_{h}d"]
+    return cols
+
+
+_SUMMED = ("expected_failures_", "observed_failures_")
+
+
+def fold_metrics(s: FoldScores, horizons_days, tau_days: float, brier_times: np.ndarray) -> dict[str, float]:
+    """All metric columns for one fold's held-out scores."""
+    out: dict[str, float] = {}
+    # Harrell's C through the counting kernel with everyone entered before the first
+    # exit: the same pairs as scikit-survival's (tests check the equality), much faster.
+    before = np.full(len(s.exit), min(0.0, float(s.exit.min(initial=0.0))) - 1.0)
+    out["c_harrell"] = truncated_concordance_counts(before, s.exit, s.event, s.risk)["c"]
+    out["c_truncation"] = truncated_concordance_counts(s.entry, s.exit, s.event, s.risk)["c"]
+    out[_uno_column(tau_days)] = uno_c(s.train_exit, s.train_event, s.exit, s.event, s.risk, tau=tau_days).c
+    window = s.exit - s.entry
+    aucs = time_dependent_auc(s.train_window, s.train_event, window, s.event, s.risk, horizons_days)
+    for h in horizons_days:
+        out[f"auc_{h}d"] = aucs[float(h)]
+    out["brier_integrated"] = integrated_brier(s.train_exit, s.train_event, s.exit, s.event, s.survival, brier_times)
+    for h in horizons_days:
+        cal = horizon_calibration(s.entry, s.exit, s.event, s.prob[h], h, s.entry)
+        out[f"expected_failures_{h}d"] = cal.expected
+        out[f"observed_failures_{h}d"] = cal.observed
+        out[f"calibration_slope_{h}d"] = cal.slope
+    return out
+
+
+def cross_validate(
+    models: Mapping[str, SurvivalModel],
+    table: LifeTable,
+    k: int = 5,
+    seed: int = 0,
+    horizons_days=(90, 365),
+    *,
+    tau_days: float | None = None,
+    brier_points: int = 20,
+) -> CVResult:
+    """Fit each model's ``unfitted_copy`` on the training units of each of ``k``
+    unit-grouped folds and score the held-out units' episodes.
+
+    ``models``: name -> model (fitted or not; only its settings are used).
+    ``horizons_days``: calibration and AUC windows (days after the episode's
+    entry). ``tau_days``: Uno's τ; by default chosen once from all episodes
+    (:func:`wearcast.metrics.choose_tau`). Seeds for the folds and for every
+    (fold, model) refit are drawn up front from ``numpy.random.default_rng(seed)``.
+    """
+    if not models:
+        raise ValueError("cross_validate needs at least one model")
+    if table.n_failures == 0:
+        raise ModelError("the life table has no failures, so models cannot be compared; "
+                         "check the failure event kinds in [fleet] failure_kinds.")
+    horizons = [int(h) for h in horizons_days]
+    names = list(models)
+    rng = np.random.default_rng(seed)
+    fold_seed = int(rng.integers(2**31 - 1))
+    model_seeds = rng.integers(0, 2**31 - 1, size=(k, len(names)))
+    folds = grouped_folds(table, k, fold_seed)
+    episodes = score_episodes(table)
+    if tau_days is None:
+        tau_days = choose_tau(episodes.exit, episodes.event, episodes.exit)
+    tau_days = float(tau_days)
+    low = float(np.quantile(episodes.exit[episodes.event], 0.1))
+    brier_times = np.unique(np.linspace(min(low, tau_days * 0.5), tau_days, brier_points).round(1))
+    scores: dict[str, list[FoldScores]] = {name: [] for name in names}
+    rows = []
+    for i, (train_rows, test_rows) in enumerate(folds):
+        in_test = np.zeros(table.n_rows, bool)
+        in_test[test_rows] = True
+        test_ep = episodes.subset(in_test[episodes.rows])
+        train_ep = episodes.subset(~in_test[episodes.rows])
+        train_table = table.take_rows(train_rows)
+        X_test = table.X.iloc[test_ep.rows].reset_index(drop=True)
+        for j, name in enumerate(names):
+            model = models[name].unfitted_copy(int(model_seeds[i, j]))
+            model.fit(train_table)
+            s = FoldScores(
+                entry=test_ep.entry,
+                exit=test_ep.exit,
+                event=test_ep.event,
+                units=test_ep.unit_id,
+                risk=np.asarray(model.risk_score(X_test), float),
+                prob={h: np.asarray(model.fail_probability(X_test, test_ep.entry, h), float) for h in horizons},
+                survival=np.asarray(model.survival(X_test, brier_times), float),
+                train_exit=train_ep.exit,
+                train_event=train_ep.event,
+                train_window=train_ep.exit - train_ep.entry,
+            )
+            scores[name].append(s)
+            rows.append({"fold": i + 1, "model": name, "units": len(np.unique(s.units)), "episodes": len(s.exit),
+                         **fold_metrics(s, horizons, tau_days, brier_times)})
+    per_fold = pd.DataFrame(rows)
+    columns = metric_columns(horizons, tau_days)
+    summary = _summarise(per_fold, names, columns)
+    notes = [IPCW_ENTRY_NOTE, f"Uno's C is restricted to failures before age {tau_days:g} days (tau)."]
+    return CVResult(names, k, seed, horizons, tau_days, brier_times, per_fold, summary, scores, folds, notes)
+
+
+def _summarise(per_fold: pd.DataFrame, names: list[str], columns: list[str]) -> pd.DataFrame:
+    out = []
+    for name in names:
+        part = per_fold[per_fold["model"] == name]
+        row = {"model": name, "folds": len(part)}
+        for col in columns:
+            values = part[col].to_numpy(float)
+            finite = values[np.isfinite(values)]
+            if col.startswith(_SUMMED):
+                row[col] = float(finite.sum()) if len(finite) else float("nan")
+                row[f"{col}_se"] = float(np.sqrt(len(finite)) * finite.std(ddof=1)) if len(finite) > 1 else float("nan")
+            else:
+                row[col] = float(finite.mean()) if len(finite) else float("nan")
+                row[f"{col}_se"] = float(finite.std(ddof=1) / np.sqrt(len(finite))) if len(finite) > 1 else float("nan")
+        out.append(row)
+    return pd.DataFrame(out)
+
+
+# -- comparison with bootstrap intervals ------------------------------------------------
+def _resampled(s: FoldScores, idx: np.ndarray) -> FoldScores:
+    return FoldScores(s.entry[idx], s.exit[idx], s.event[idx], s.units[idx], s.risk[idx],
+                      {h: p[idx] for h, p in s.prob.items()}, s.survival[idx], s.train_exit,
+                      s.train_event, s.train_window)
+
+
+def _combine(fold_values: list[dict[str, float]], columns: list[str]) -> dict[str, float]:
+    out = {}
+    for col in columns:
+        values = np.array([v[col] for v in fold_values], float)
+        finite = values[np.isfinite(values)]
+        if not len(finite):
+            out[col] = float("nan")
+        else:
+            out[col] = float(finite.sum() if col.startswith(_SUMMED) else finite.mean())
+    return out
+
+
+def compare_models(
+    result: CVResult,
+    *,
+    bootstrap: int = 200,
+    seed: int = 0,
+    baseline: str = BASELINE,
+    level: float = 0.95,
+) -> pd.DataFrame:
+    """One row per model: every metric, its bootstrap interval and the paired
+    difference against ``baseline``.
+
+    Columns per metric ``m``: ``m`` (mean over folds; failure counts summed over
+    folds), ``m_low``/``m_high`` (percentile interval at ``level`` from
+    ``bootstrap`` resamples of held-out units within each fold),
+    ``m_vs_cox`` (this model minus the baseline) with ``m_vs_cox_low``/``_high``
+    computed on the same resamples. ``expected_failures_<h>d_pb_low/_high``:
+    the Poisson-binomial interval Σp ± 1.96 √Σp(1-p) of the expected count.
+    The baseline columns are NaN when ``baseline`` is not among the models.
+    """
+    columns = metric_columns(result.horizons_days, result.tau_days)
+    rng = np.random.default_rng(seed)
+    fold_seeds = rng.integers(0, 2**31 - 1, size=result.k)
+    # the same resamples for every model (paired differences)
+    draws_idx = [unit_resamples(fold.units, bootstrap, int(fold_seeds[f]))
+                 for f, fold in enumerate(result.scores[result.models[0]])]
+    point, boot = {}, {}
+    for name in result.models:
+        folds = result.scores[name]
+        point[name] = result.summary.set_index("model").loc[name, columns].astype(float).to_dict()
+        boot[name] = pd.DataFrame([
+            _combine([fold_metrics(_resampled(s, draws_idx[f][b]), result.horizons_days, result.tau_days,
+                                   result.brier_times) for f, s in enumerate(folds)], columns)
+            for b in range(bootstrap)
+        ], columns=columns)
+    has_base = baseline in result.models
+    rows = []
+    for name in result.models:
+        row = {"model": name}
+        for col in columns:
+            iv = percentile_interval(point[name][col], boot[name][col].to_numpy(float), level)
+            row[col], row[f"{col}_low"], row[f"{col}_high"] = iv.estimate, iv.low, iv.high
+            if has_base:
+                diff = boot[name][col].to_numpy(float) - boot[baseline][col].to_numpy(float)
+                dv = percentile_interval(point[name][col] - point[baseline][col], diff, level)
+                row[f"{col}_vs_{baseline}"], row[f"{col}_vs_{baseline}_low"], row[f"{col}_vs_{baseline}_high"] = (
+                    dv.estimate, dv.low, dv.high)
+            else:
+                row[f"{col}_vs_{baseline}"] = row[f"{col}_vs_{baseline}_low"] = row[f"{col}_vs_{baseline}_high"] = np.nan
+        for h in result.horizons_days:
+            p = np.concatenate([s.prob[h] for s in result.scores[name]])
+            sd = float(np.sqrt(np.sum(p * (1 - p))))
+            row[f"expected_failures_{h}d_pb_low"] = max(0.0, float(p.sum()) - 1.959963984540054 * sd)
+            row[f"expected_failures_{h}d_pb_high"] = float(p.sum()) + 1.959963984540054 * sd
+        rows.append(row)
+    out = pd.DataFrame(rows)
+    out.attrs.update({"bootstrap": bootstrap, "level": level, "tau_days": result.tau_days, "baseline": baseline})
+    return out
+
+
+# -- output ------------------------------------------------------------------------------
+def write_comparison(result: CVResult, out_dir, comparison: pd.DataFrame | None = None) -> list[Path]:
+    """Write ``metrics.json`` (per fold, summary, τ, notes) and ``comparison.csv``
+    atomically into ``out_dir``; ``comparison`` defaults to the summary."""
+    out_dir = Path(out_dir)
+    table = comparison if comparison is not None else result.summary
+    payload = {
+        "folds": result.k,
+        "seed": result.seed,
+        "models": result.models,
+        "horizons_days": result.horizons_days,
+        "tau_days": result.tau_days,
+        "brier_times_days": [float(t) for t in result.brier_times],
+        "notes": result.notes,
+        "per_fold": json.loads(result.per_fold.to_json(orient="records")),
+        "summary": json.loads(result.summary.to_json(orient="records")),
+        "comparison": json.loads(table.to_json(orient="records")),
+        "bootstrap": dict(table.attrs) if comparison is not None else None,
+    }
+    return [_atomic.write_json(out_dir / "metrics.json", payload),
+            _atomic.write_csv(out_dir / "comparison.csv", table)]
+
+
+def format_table(df: pd.DataFrame, columns: list[str] | None = None, digits: int = 3) -> str:
+    """An aligned plain-text table (text columns left, numbers right, NaN as "-")."""
+    df = df if columns is None else df.loc[:, columns]
+    cells = [[str(c) for c in df.columns]]
+    numeric = [pd.api.types.is_numeric_dtype(df[c]) for c in df.columns]
+    for _, row in df.iterrows():
+        line = []
+        for value, is_num in zip(row.tolist(), numeric):
+            if is_num and isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, bool):
+                if not np.isfinite(value):
+                    line.append("-")
+                elif float(value).is_integer() and abs(value) >= 10:
+                    line.append(f"{int(value)}")
+                else:
+                    line.append(f"{value:.{digits}f}")
+            else:
+                line.append(str(value))
+        cells.append(line)
+    widths = [max(len(r[i]) for r in cells) for i in range(len(cells[0]))]
+    lines = []
+    for r, row in enumerate(cells):
+        parts = [(cell.rjust(w) if numeric[i] and r > 0 else cell.ljust(w)) for i, (cell, w) in enumerate(zip(row, widths))]
+        lines.append("  ".join(parts).rstrip())
+        if r == 0:
+            lines.append("  ".join("-" * w for w in widths))
+    return "\n".join(lines) + "\n"
