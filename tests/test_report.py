@@ -1,0 +1,409 @@
+"""Tests for the planners' report (wearcast.report).
+
+The fleet curves are checked against lifelines (a reference library) on data
+it ships; the page is checked for self-containment, for embedding every figure
+and for showing exactly the numbers in the run's files. Fixture frames below
+are invented and only shaped like the run's file contracts (ranking's
+ranked_units.csv / fleet_forecast.csv / summary.json, validation's
+comparison.csv): they exercise the layout, never a result.
+"""
+
+from __future__ import annotations
+
+import base64
+import json
+import re
+from html.parser import HTMLParser
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from wearcast import CAUTION, LifeTable, _atomic
+from wearcast.report import (FIGURES_DIR, REPORT_FILE, ReportInputs, build_report, render_report,
+                             report_inputs_from_run_folder)
+from wearcast.report import _curves
+
+
+# -- fixtures shaped like the contracts (invented values) ----------------------------------
+from wearcast.report import ReportInputs
+
+
+def ranked_units(n: int = 40, seed: int = 3) -> pd.DataFrame:
+    rng = np.random.default_rng(seed)
+    p30 = np.sort(rng.uniform(0.002, 0.25, n))[::-1]
+    frame = pd.DataFrame({
+        "unit_id": [f"PX-{1000 + i}" for i in range(n)],
+        "site": rng.choice(["North yard", "River works", "Hill depot"], n),
+        "age_days": rng.uniform(200, 4000, n).round(1),
+    })
+    for h, scale in ((30, 1.0), (90, 2.6), (365, 6.0)):
+        p = np.clip(p30 * scale, 0, 0.97)
+        frame[f"p_fail_{h}d"] = p
+        frame[f"p_fail_{h}d_low"] = p * 0.6
+        frame[f"p_fail_{h}d_high"] = np.clip(p * 1.5, 0, 0.99)
+    frame["rank"] = np.arange(1, n + 1)
+    frame["rank_low"] = np.maximum(1, frame["rank"] - rng.integers(0, 6, n))
+    frame["rank_high"] = frame["rank"] + rng.integers(0, 20, n)
+    frame["top50_share"] = np.clip(1.0 - frame["rank"] / 80.0, 0, 1)
+    frame["top50_stable"] = frame["top50_share"] >= 0.9
+    words = ["older than most", "high duty cycles", "harsh site", "recent repair", "many starts"]
+    for j in (1, 2, 3):
+        frame[f"driver_{j}"] = [words[(i + j) % len(words)] for i in range(n)]
+    return frame
+
+
+def fleet_forecast() -> pd.DataFrame:
+    rows = []
+    for h, base in ((30, 4.37), (90, 11.92), (365, 38.45)):
+        for group_by, group, share in (("fleet", "all", 1.0), ("site", "North yard", 0.5),
+                                       ("site", "River works", 0.3), ("site", "Hill depot", 0.2)):
+            e = base * share
+            rows.append({"group_by": group_by, "group": group, "horizon_days": h, "units": int(400 * share),
+                         "expected_failures": e, "failures_low": np.floor(e * 0.55), "failures_high": np.ceil(e * 1.6),
+                         "chance_only_low": np.floor(e * 0.7), "chance_only_high": np.ceil(e * 1.4)})
+    return pd.DataFrame(rows)
+
+
+def summary() -> dict:
+    return {"as_of": "2026-11-30", "model": "boosted", "horizons_days": [30, 90, 365], "rank_horizon_days": 30,
+            "top_k": 20, "stable_share": 0.9, "interval_quantiles": [0.05, 0.95], "units_in_service": 40}
+
+
+def comparison() -> pd.DataFrame:
+    rows = []
+    for model, c in (("boosted", 0.71), ("forest", 0.69), ("cox", 0.66)):
+        row = {"model": model}
+        for m, shift in (("c_harrell", 0.0), ("c_truncation", -0.01), ("c_uno_tau_1825d", -0.02)):
+            row[m], row[f"{m}_low"], row[f"{m}_high"] = c + shift, c + shift - 0.04, c + shift + 0.04
+            row[f"{m}_vs_cox"] = c - 0.66
+        rows.append(row)
+    return pd.DataFrame(rows)
+
+
+def calibration() -> pd.DataFrame:
+    predicted = np.linspace(0.01, 0.3, 10)
+    return pd.DataFrame({"model": "boosted", "horizon_days": 90, "group": np.arange(1, 11), "units": 40,
+                         "predicted": predicted, "observed": predicted * np.linspace(0.8, 1.1, 10),
+                         "failures": (predicted * 40).round().astype(int)})
+
+
+def backtest_summary() -> pd.DataFrame:
+    return pd.DataFrame({"model": ["boosted", "cox"], "precision_top50_90d": [0.22, 0.18],
+                         "precision_oldest_top50_90d": [0.1, 0.1], "lift_top50_90d_vs_oldest": [2.2, 1.8]})
+
+
+def life_table(n: int = 300, seed: int = 5) -> LifeTable:
+    """Weibull lives (shape 2, scale 2000 days) with late entry and suspensions."""
+    rng = np.random.default_rng(seed)
+    life = 2000.0 * rng.weibull(2.0, n)
+    entry = np.where(rng.random(n) < 0.3, rng.uniform(0, 800, n), 0.0)
+    keep = life > entry
+    life, entry = life[keep], entry[keep]
+    cens = entry + rng.uniform(200, 4000, len(life))
+    exit_ = np.minimum(life, cens)
+    frame = pd.DataFrame({"unit_id": [f"PX-{i}" for i in range(len(life))], "entry_age": entry, "exit_age": exit_,
+                          "failed": life <= cens, "site": rng.choice(["North yard", "River works"], len(life))})
+    return LifeTable.from_frame(frame)
+
+
+def full_inputs() -> ReportInputs:
+    ranked = ranked_units()
+    contrib = pd.DataFrame([{"unit_id": u, "covariate": c, "contribution": v}
+                            for i, u in enumerate(ranked["unit_id"][:6])
+                            for c, v in (("age_days", 0.4 - 0.05 * i), ("starts_per_day", 0.2), ("site", -0.15),
+                                         ("load_factor", 0.1 * (-1) ** i))])
+    return ReportInputs(
+        title="Pump fleet, invented demo", as_of="2026-11-30", ranked_units=ranked,
+        fleet_forecast=fleet_forecast(), summary=summary(),
+        comparison=comparison(), calibration=calibration(), backtest_summary=backtest_summary(),
+        oob_curve=[(n, 0.6 + 0.1 * (1 - np.exp(-n / 40))) for n in range(10, 210, 10)],
+        cv_curve=1.8 - 0.2 * (1 - np.exp(-np.arange(1, 120) / 25)) + 0.0008 * np.arange(1, 120),
+        life_table=life_table(), group_by="site",
+        importance=pd.DataFrame({"covariate": ["age_days", "starts_per_day", "site", "load_factor"],
+                                 "importance": [0.4, 0.25, 0.12, 0.05]}),
+        unit_contributions=contrib,
+        data_quality={"rows_read": 1250, "rows_kept": 1231, "rows_quarantined": 17, "rows_after_as_of": 2,
+                      "quarantined_by_reason": {"install date after failure date": 11, "unknown unit id": 6}},
+        monthly_changes={"entered_top_k": ["PX-1003", "PX-1011"], "left_top_k": ["PX-1077"],
+                         "largest_movers": pd.DataFrame({"unit_id": ["PX-1003"], "rank_before": [48],
+                                                         "rank_now": [4], "driver": ["many starts"]})},
+        drift=pd.DataFrame({"covariate": ["age_days", "starts_per_day", "load_factor"], "psi": [0.03, 0.14, 0.31],
+                            "level": ["none", "moderate", "large"]}),
+    )
+
+
+class _Page(HTMLParser):
+    """Collects what the checks need: tags and attributes, marked numbers, style text."""
+
+    def __init__(self):
+        super().__init__(convert_charrefs=True)
+        self.tags: list[tuple[str, dict]] = []
+        self.numbers: list[dict] = []
+        self.sections: list[str] = []
+        self.style = ""
+        self.text: list[str] = []
+        self._open_number: dict | None = None
+        self._in_style = False
+
+    def handle_starttag(self, tag, attrs):
+        attrs = dict(attrs)
+        self.tags.append((tag, attrs))
+        if tag == "section":
+            self.sections.append(attrs.get("id", ""))
+        if tag == "style":
+            self._in_style = True
+        if "data-field" in attrs and "data-value" in attrs and tag == "span":
+            self._open_number = dict(attrs, text="")
+            self.numbers.append(self._open_number)
+
+    def handle_endtag(self, tag):
+        if tag == "style":
+            self._in_style = False
+        if tag == "span":
+            self._open_number = None
+
+    def handle_data(self, data):
+        if self._in_style:
+            self.style += data
+        else:
+            self.text.append(data)
+        if self._open_number is not None:
+            self._open_number["text"] += data
+
+
+def _parse(page: str) -> _Page:
+    parser = _Page()
+    parser.feed(page)
+    parser.close()
+    return parser
+
+
+def _write_run_folder(folder: Path) -> None:
+    """A run folder as ranking/validation/io write it (their writers: _atomic, %.6g floats)."""
+    _atomic.write_csv(folder / "ranked_units.csv", ranked_units())
+    _atomic.write_csv(folder / "fleet_forecast.csv", fleet_forecast())
+    _atomic.write_json(folder / "summary.json", summary())
+    _atomic.write_csv(folder / "comparison.csv", comparison())
+    _atomic.write_csv(folder / "calibration.csv", calibration())
+    _atomic.write_csv(folder / "backtest_summary.csv", backtest_summary())
+    _atomic.write_json(folder / "check_summary.json", {
+        "rows_read": 1250, "rows_kept": 1231, "rows_quarantined": 17, "rows_after_as_of": 2,
+        "quarantined_by_reason": {"dated before install": 11, "unit not in the register": 6}})
+    _atomic.write_csv(folder / "life_table.csv", life_table().frame)
+
+
+@pytest.fixture(scope="module")
+def built(tmp_path_factory):
+    """One full report built from a run folder (figures are the slow part: ~5 s)."""
+    folder = tmp_path_factory.mktemp("run")
+    _write_run_folder(folder)
+    inputs = report_inputs_from_run_folder(folder, oob_curve=full_inputs().oob_curve,
+                                           cv_curve=full_inputs().cv_curve, drift=full_inputs().drift)
+    paths = build_report(inputs, folder / "report")
+    page = paths["report"].read_text(encoding="utf-8")
+    return folder, paths, page, _parse(page)
+
+
+# -- the fleet curves against lifelines -------------------------------------------------------
+
+def test_product_limit_with_late_entry_matches_lifelines_on_macs():
+    # Reference: lifelines KaplanMeierFitter(entry=...) on the left-truncated Multicenter AIDS
+    # Cohort Study data that lifelines ships (load_multicenter_aids_cohort_study: W entry, T exit, D event).
+    from lifelines import KaplanMeierFitter
+    from lifelines.datasets import load_multicenter_aids_cohort_study
+
+    df = load_multicenter_aids_cohort_study()
+    ours = _curves.product_limit_survival(df["W"], df["T"], df["D"].astype(bool))
+    km = KaplanMeierFitter().fit(df["T"], df["D"], entry=df["W"])
+    np.testing.assert_allclose(ours["survival"], km.survival_function_at_times(ours["age"]).to_numpy(),
+                               rtol=0, atol=1e-12)
+    np.testing.assert_array_equal(ours["at_risk"], km.event_table.loc[ours["age"], "at_risk"].to_numpy())
+    ci = km.confidence_interval_.loc[ours["age"]].to_numpy()  # exponential Greenwood, 95 %
+    np.testing.assert_allclose(ours["low"], ci[:, 0], atol=1e-10)
+    np.testing.assert_allclose(ours["high"], ci[:, 1], atol=1e-10)
+
+
+def test_smoothed_hazard_without_boundary_matches_lifelines_on_waltons():
+    # Reference: lifelines NelsonAalenFitter.smoothed_hazard_ (Epanechnikov kernel, no boundary
+    # correction) on the Waltons data lifelines ships; tie smoothing off so increments are d/n.
+    from lifelines import NelsonAalenFitter
+    from lifelines.datasets import load_waltons
+
+    w = load_waltons()
+    na = NelsonAalenFitter(nelson_aalen_smoothing=False).fit(w["T"], w["E"])
+    reference = na.smoothed_hazard_(bandwidth=8.0)
+    ours = _curves.smoothed_hazard(np.zeros(len(w)), w["T"], w["E"].astype(bool),
+                                   reference.index.to_numpy(), 8.0, boundary=None)
+    np.testing.assert_allclose(ours["rate"], reference.iloc[:, 0].to_numpy(), rtol=1e-12, atol=1e-15)
+
+
+def test_boundary_correction_keeps_a_constant_hazard_flat_at_young_ages():
+    # Known truth: exponential lives have a constant hazard 1/mean. A kernel estimate without
+    # boundary correction is about halved at age 0 (half the kernel lies below 0; common practice
+    # to correct by renormalising the kernel's mass); the corrected one should not be.
+    rng = np.random.default_rng(11)
+    life = rng.exponential(1000.0, 20000)
+    cens = rng.uniform(0, 3000, 20000)
+    exit_, event = np.minimum(life, cens), life <= cens
+    grid = np.array([0.0, 100.0, 600.0])
+    plain = _curves.smoothed_hazard(np.zeros_like(exit_), exit_, event, grid, 200.0, boundary=None)
+    fixed = _curves.smoothed_hazard(np.zeros_like(exit_), exit_, event, grid, 200.0)
+    np.testing.assert_allclose(fixed["rate"], 1e-3, rtol=0.1)
+    assert plain["rate"][0] == pytest.approx(0.5e-3, rel=0.1)
+    assert fixed["rate"][2] == pytest.approx(plain["rate"][2])  # away from the boundary: unchanged
+    assert np.all(fixed["low"] <= fixed["rate"]) and np.all(fixed["rate"] <= fixed["high"])
+
+
+@pytest.mark.parametrize("shape, expected", [(3.0, "rising"), (0.5, "falling"), (1.0, "flat")])
+def test_hazard_reading_follows_the_weibull_shape(shape, expected):
+    # Known truth: the Weibull hazard rises for shape > 1, falls for shape < 1, is constant at 1.
+    rng = np.random.default_rng(int(shape * 10))
+    life = 1000.0 * rng.weibull(shape, 8000)
+    cens = rng.uniform(0, 2500, 8000)
+    exit_, event = np.minimum(life, cens), life <= cens
+    entry = np.zeros_like(exit_)
+    grid = np.linspace(0.0, np.quantile(exit_, 0.9), 120)
+    curve = _curves.smoothed_hazard(entry, exit_, event, grid, _curves.default_bandwidth(exit_, event))
+    phase, sentence = _curves.hazard_shape(curve)
+    assert phase == expected, sentence
+
+
+def test_at_risk_counts_follow_the_delayed_entry_rule():
+    # A row is at risk at t when entry < t <= exit (wearcast.lifetable); counted by hand.
+    entry = np.array([0.0, 5.0, 5.0])
+    exit_ = np.array([10.0, 8.0, 20.0])
+    assert _curves.at_risk_counts(entry, exit_, np.array([5.0, 5.5, 8.0, 8.5, 10.0, 20.0, 20.5])).tolist() == \
+        [1, 3, 3, 2, 2, 1, 0]
+
+
+# -- the page -------------------------------------------------------------------------------------
+
+def test_page_parses_and_references_nothing_outside(built):
+    _, _, page, parsed = built
+    assert page.startswith("<!DOCTYPE html>")
+    for tag, attrs in parsed.tags:
+        for key in ("src", "href", "srcset", "action", "poster", "data"):
+            if key not in attrs:
+                continue
+            value = attrs[key] or ""
+            assert not re.match(r"\s*(https?:)?//", value), f"<{tag} {key}={value!r}> points outside the page"
+            if key == "src":
+                assert value.startswith("data:image/png;base64,"), f"<{tag}> src is not an embedded PNG"
+            if key == "href":
+                assert value.startswith("#"), f"<{tag}> href {value!r} is not an in-page anchor"
+        assert tag not in ("script", "link", "iframe", "object", "embed"), f"<{tag}> is not allowed"
+    assert "@import" not in parsed.style
+    assert not re.search(r"url\(", parsed.style), "the stylesheet must not load anything"
+    assert "http://" not in page and "https://" not in page
+
+
+def test_every_figure_file_is_embedded_in_the_page(built):
+    folder, paths, page, parsed = built
+    pngs = sorted((folder / "report" / FIGURES_DIR).glob("*.png"))
+    assert {p.stem for p in pngs} == set(paths) - {"report"}
+    assert {"top_units", "forecast_by_group", "concordance", "calibration", "backtest", "tree_curves",
+            "survival", "hazard", "drift"} <= {p.stem for p in pngs}
+    sources = {attrs["src"] for tag, attrs in parsed.tags if tag == "img"}
+    for png in pngs:
+        data = png.read_bytes()
+        assert data.startswith(b"\x89PNG\r\n\x1a\n")
+        assert "data:image/png;base64," + base64.b64encode(data).decode("ascii") in sources, png.name
+    for tag, attrs in parsed.tags:
+        if tag == "img":
+            assert attrs.get("alt"), "every figure needs alt text"
+
+
+def test_headline_numbers_equal_the_run_files(built):
+    folder, _, _, parsed = built
+    forecast = pd.read_csv(folder / "fleet_forecast.csv")
+    fleet = forecast[forecast["group_by"] == "fleet"].set_index("horizon_days")
+    shown = [n for n in parsed.numbers if "data-horizon-days" in n]
+    fields = {"expected_failures", "failures_low", "failures_high", "chance_only_low", "chance_only_high", "units"}
+    assert {n["data-field"] for n in shown} == fields
+    assert {int(n["data-horizon-days"]) for n in shown} == set(fleet.index)
+    for n in shown:
+        expected = float(fleet.loc[int(n["data-horizon-days"]), n["data-field"]])
+        assert float(n["data-value"]) == expected, n
+        # the big plain number is the same value, rounded for reading
+        decimals = 1 if n["data-field"] == "expected_failures" else 0
+        assert float(n["text"].replace(",", "")) == pytest.approx(round(expected, decimals)), n
+    # and the summary's own copy agrees (ranking writes both)
+    saved = json.loads((folder / "summary.json").read_text())
+    if "expected_failures" in saved:
+        for h, value in saved["expected_failures"].items():
+            assert fleet.loc[int(h), "expected_failures"] == pytest.approx(value)
+
+
+def test_top_units_table_shows_the_ranked_file(built):
+    folder, _, page, _ = built
+    ranked = pd.read_csv(folder / "ranked_units.csv", dtype={"unit_id": str}).set_index("unit_id")
+    rows = re.findall(r'<tr data-key="([^"]+)">(.*?)</tr>', page.split('id="top-units"')[1].split("</table>")[0])
+    assert [u for u, _ in rows] == list(ranked.sort_values("rank").index[:20])
+    for unit, cells in rows:
+        values = dict(re.findall(r'data-field="([^"]+)" data-value="([^"]*)"', cells))
+        assert values["unit_id"] == unit
+        for field in ("rank", "rank_low", "rank_high", "p_fail_30d", "p_fail_30d_low", "p_fail_30d_high",
+                      "p_fail_90d", "p_fail_365d", "top50_share"):
+            assert float(values[field]) == pytest.approx(float(ranked.loc[unit, field]), rel=1e-12), (unit, field)
+        for driver in ranked.loc[unit, ["driver_1", "driver_2", "driver_3"]]:
+            assert driver in cells
+
+
+def test_data_quality_counts_and_caution_are_shown(built):
+    folder, _, page, parsed = built
+    dq = json.loads((folder / "check_summary.json").read_text())
+    marked = {n["data-field"]: n for n in parsed.numbers}
+    for key in ("rows_read", "rows_kept", "rows_quarantined", "rows_after_as_of"):
+        assert int(marked[key]["data-value"]) == dq[key]
+    for reason, count in dq["quarantined_by_reason"].items():
+        assert re.search(rf'data-key="{re.escape(reason)}">.*?data-value="{count}"', page)
+    text = " ".join(" ".join(parsed.text).split())
+    assert CAUTION in text
+    assert "working today" in text and "not guarantees" in text
+
+
+def test_sections_come_in_reading_order(built):
+    *_, parsed = built
+    assert parsed.sections == ["this-month", "evidence", "fleet", "changes", "data-quality", "cautions"]
+
+
+def test_missing_inputs_drop_their_sections_and_leave_a_valid_page(tmp_path):
+    paths = build_report(ReportInputs(title="Empty run", as_of="2026-11-30"), tmp_path)
+    parsed = _parse(paths["report"].read_text(encoding="utf-8"))
+    assert parsed.sections == ["cautions"]
+    assert set(paths) == {"report"}
+    assert not list(tmp_path.rglob(f"*{_atomic.TMP_SUFFIX}"))
+
+
+def test_rebuilding_removes_figures_the_new_page_does_not_have(tmp_path):
+    build_report(ReportInputs(ranked_units=ranked_units(), summary=summary()), tmp_path)
+    assert (tmp_path / FIGURES_DIR / "top_units.png").exists()
+    build_report(ReportInputs(life_table=life_table()), tmp_path)
+    assert sorted(p.stem for p in (tmp_path / FIGURES_DIR).glob("*.png")) == ["hazard", "survival"]
+
+
+def test_run_without_refits_still_renders(tmp_path):
+    # ranking writes empty interval columns when no bootstrap refits were run
+    ranked = ranked_units(12)
+    for col in [c for c in ranked.columns if c.endswith(("_low", "_high"))] + ["top50_share"]:
+        ranked[col] = np.nan
+    ranked["rank_low"] = pd.array([pd.NA] * len(ranked), dtype="Int64")
+    ranked["rank_high"] = pd.array([pd.NA] * len(ranked), dtype="Int64")
+    page, figures = render_report(ReportInputs(ranked_units=ranked, summary=summary()))
+    assert "top_units" in figures and 'data-field="rank_low" data-value=""' in page
+
+
+def test_figures_are_reproducible_bytes():
+    inputs = ReportInputs(life_table=life_table(), group_by="site")
+    _, first = render_report(inputs)
+    _, second = render_report(inputs)
+    assert first == second
+
+
+def test_loader_reports_a_missing_folder(tmp_path):
+    from wearcast.exceptions import InputMissingError
+
+    with pytest.raises(InputMissingError, match="does not exist"):
+        report_inputs_from_run_folder(tmp_path / "nope")
