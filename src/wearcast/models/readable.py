@@ -48,7 +48,7 @@ class ReadableRule:
 
     def text(self) -> str:
         when = " and ".join(self.conditions) if self.conditions else "every unit"
-        return (f"{when} -> {self.level} (x{self.relative_risk:.2g} the fleet median; "
+        return (f"{when} -> {self.level} (x{self.relative_risk:.3g} the fleet median; "
                 f"share of fleet {100 * self.share:.0f} %)")
 
 

@@ -1,0 +1,199 @@
+"""wearcast's survival forest beside scikit-survival's RandomSurvivalForest.
+
+Data: the invented scenario (wearcast.scenario), read through the real export
+loader (wearcast.io.load_export). Training fleets of 2,000, 10,000 and
+100,000 positions (scenario seeds 101, 102, 103); one separate 10,000-position
+test fleet (seed 202) scores both models.
+
+* wearcast forest: 100 trees, mode random_forest (√p predictors per split),
+  min_events_per_leaf 5, max_depth 12, 200 grid ages, 2 threads; fitted on the
+  full life table (counting-process rows with delayed entry).
+* scikit-survival RandomSurvivalForest: 100 trees, min_samples_leaf=15,
+  max_features="sqrt", n_jobs=2. It has no delayed entry, so it gets one row
+  per life (covariates of the life's last row, outcome at its last exit age,
+  entry ignored): the usual way such a library is fed this data.
+* Scoring, on each test life's last row: Harrell's C (entry ignored),
+  truncation-aware C (a pair counts only when the longer-lived unit was
+  watched at the earlier failure age) and the same two for the scenario's true
+  log risk (oracle).
+
+Memory: each model runs in its own child process; "peak RSS" is the child's
+``ru_maxrss`` (whole process: Python, libraries and data included) and
+"fit+predict RSS" is that peak minus the RSS measured after the data were
+loaded, before fitting. Times are wall-clock (time.perf_counter). The machine
+is shared with other work, so times are indicative.
+
+Usage: ``python bench/bench_forest.py [--cache DIR] [--skip-100k]``; prints a
+Markdown table. Life tables are cached in DIR (default
+/tmp/wearcast-bench-forest) because loading a 100,000-position export takes
+minutes.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import resource
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+TRAIN = {2_000: 101, 10_000: 102, 100_000: 103}
+TEST = (10_000, 202)
+N_TREES = 100
+
+
+def _cache_paths(cache: Path, n_units: int, seed: int) -> tuple[Path, Path, Path]:
+    stem = cache / f"fleet_{n_units}_{seed}"
+    return stem.with_suffix(".csv"), stem.with_suffix(".json"), stem / "truth.csv"
+
+
+def prepare(cache: Path, n_units: int, seed: int) -> float:
+    """Generate the scenario, load it through wearcast.io, cache the life table."""
+    from wearcast.config import load_config
+    from wearcast.io import load_export
+    from wearcast.scenario import generate_scenario
+
+    table_csv, meta_json, _ = _cache_paths(cache, n_units, seed)
+    if table_csv.exists():
+        return 0.0
+    start = time.perf_counter()
+    files = generate_scenario(cache / f"fleet_{n_units}_{seed}", n_units=n_units, seed=seed)
+    table = load_export(load_config(files.config)).table
+    table.frame.to_csv(table_csv, index=False)
+    meta_json.write_text(json.dumps({"covariates": table.covariates, "categorical": table.categorical,
+                                     "summary": table.summary()}))
+    return time.perf_counter() - start
+
+
+def read_table(cache: Path, n_units: int, seed: int):
+    from wearcast import LifeTable
+
+    table_csv, meta_json, _ = _cache_paths(cache, n_units, seed)
+    meta = json.loads(meta_json.read_text())
+    frame = pd.read_csv(table_csv, dtype={"unit_id": str, "mode": str}, keep_default_na=False,
+                        na_values={c: [""] for c in meta["covariates"] if c not in meta["categorical"]})
+    return LifeTable.from_frame(frame, meta["covariates"], meta["categorical"])
+
+
+def last_rows(table) -> tuple[np.ndarray, np.ndarray]:
+    """Last row of each life and the life's first entry age."""
+    from wearcast.models._forest_oob import last_rows_of_lives
+
+    units, life = table.unit_codes(), table.frame["life"].to_numpy()
+    rows = last_rows_of_lives(units, life, table.exit)
+    first_entry = table.frame.groupby(["unit_id", "life"], sort=False)["entry_age"].transform("min").to_numpy()
+    return rows, first_entry[rows]
+
+
+def _rss_mb() -> float:
+    import psutil
+
+    return psutil.Process().memory_info().rss / 2**20
+
+
+def child(model: str, cache: Path, n_units: int) -> dict:
+    """Fit one model on one training fleet, score the test fleet; runs in a fresh process."""
+    from wearcast import metrics
+    from wearcast.scenario import read_truth, true_log_risk
+
+    train = read_table(cache, n_units, TRAIN[n_units])
+    score_test = n_units != 100_000
+    if score_test:
+        test = read_table(cache, *TEST)
+        test_rows, test_entry = last_rows(test)
+        X_test = test.X.iloc[test_rows]
+    baseline = _rss_mb()
+    out = {"model": model, "n_units": n_units, "train_rows": train.n_rows}
+    if model == "wearcast":
+        from wearcast.models.forest import SurvivalForest
+
+        forest = SurvivalForest("random_forest", N_TREES, None, 5, 12, 200, seed=1, n_jobs=2)
+        start = time.perf_counter()
+        forest.fit(train)
+        out["fit_s"] = time.perf_counter() - start
+        out["oob_c"] = forest.oob_concordance_
+        if score_test:
+            start = time.perf_counter()
+            risk = forest.risk_score(X_test)
+            forest.cumulative_hazard_at(X_test, np.full(len(X_test), 3650.0))
+            out["predict_s"] = time.perf_counter() - start
+    else:
+        from sksurv.ensemble import RandomSurvivalForest
+        from sksurv.util import Surv
+
+        rows, _ = last_rows(train)
+        X_train = pd.get_dummies(train.X.iloc[rows], dtype=float)
+        y_train = Surv.from_arrays(train.event[rows], train.exit[rows])
+        out["train_rows"] = len(rows)
+        peer = RandomSurvivalForest(n_estimators=N_TREES, min_samples_leaf=15, max_features="sqrt",
+                                    n_jobs=2, random_state=1)
+        start = time.perf_counter()
+        peer.fit(X_train, y_train)
+        out["fit_s"] = time.perf_counter() - start
+        start = time.perf_counter()
+        X_peer = pd.get_dummies(X_test, dtype=float).reindex(columns=X_train.columns, fill_value=0.0)
+        risk = peer.predict(X_peer)
+        peer.predict_cumulative_hazard_function(X_peer.iloc[:2000], return_array=True)
+        out["predict_s"] = time.perf_counter() - start
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    out["peak_rss_mb"] = peak
+    out["fit_predict_rss_mb"] = peak - baseline
+    if score_test:
+        exit_, event = test.exit[test_rows], test.event[test_rows]
+        out["harrell_c"] = metrics.harrell_c(exit_, event, risk).estimate
+        out["trunc_c"] = metrics.truncation_aware_c(test_entry, exit_, event, risk).estimate
+        truth = read_truth(_cache_paths(cache, *TEST)[2])
+        oracle = true_log_risk(truth, test.frame.iloc[test_rows])
+        out["oracle_harrell_c"] = metrics.harrell_c(exit_, event, oracle).estimate
+        out["oracle_trunc_c"] = metrics.truncation_aware_c(test_entry, exit_, event, oracle).estimate
+    return out
+
+
+def main(argv=None) -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--cache", type=Path, default=Path("/tmp/wearcast-bench-forest"))
+    parser.add_argument("--skip-100k", action="store_true")
+    parser.add_argument("--child", nargs=2, metavar=("MODEL", "N_UNITS"))
+    args = parser.parse_args(argv)
+    if args.child:
+        print(json.dumps(child(args.child[0], args.cache, int(args.child[1]))))
+        return
+    args.cache.mkdir(parents=True, exist_ok=True)
+    sizes = [2_000, 10_000] + ([] if args.skip_100k else [100_000])
+    for n_units, seed in [TEST] + [(n, TRAIN[n]) for n in sizes]:
+        spent = prepare(args.cache, n_units, seed)
+        print(f"fleet {n_units} (seed {seed}) ready; load took {spent:.0f} s", file=sys.stderr)
+    runs = [(m, n) for n in (2_000, 10_000) for m in ("wearcast", "scikit-survival")]
+    runs += [] if args.skip_100k else [("wearcast", 100_000)]
+    results = []
+    for model, n_units in runs:
+        done = subprocess.run([sys.executable, __file__, "--cache", str(args.cache), "--child", model, str(n_units)],
+                              capture_output=True, text=True, check=True)
+        results.append(json.loads(done.stdout.strip().splitlines()[-1]))
+        print(json.dumps(results[-1]), file=sys.stderr)
+    (args.cache / "results.json").write_text(json.dumps(results, indent=2))
+    print(render(results))
+
+
+def render(results: list[dict]) -> str:
+    def f(r, key, fmt):
+        return format(r[key], fmt) if key in r and r[key] == r[key] else "—"
+
+    lines = ["| model | training units (rows) | fit s | predict s | peak RSS MB | fit+predict RSS MB "
+             "| Harrell C | truncation-aware C | oracle Harrell C | oracle trunc. C |",
+             "|---|---|---|---|---|---|---|---|---|---|"]
+    for r in results:
+        lines.append(f"| {r['model']} | {r['n_units']:,} ({r['train_rows']:,}) | {f(r, 'fit_s', '.1f')} | "
+                     f"{f(r, 'predict_s', '.2f')} | {f(r, 'peak_rss_mb', '.0f')} | {f(r, 'fit_predict_rss_mb', '.0f')} | "
+                     f"{f(r, 'harrell_c', '.4f')} | {f(r, 'trunc_c', '.4f')} | {f(r, 'oracle_harrell_c', '.4f')} | "
+                     f"{f(r, 'oracle_trunc_c', '.4f')} |")
+    return "\n".join(lines)
+
+
+if __name__ == "__main__":
+    main()
