@@ -386,19 +386,17 @@ def format_table(df: pd.DataFrame, columns: list[str] | None = None, digits: int
     """An aligned plain-text table (text columns left, numbers right, NaN as "-")."""
     df = df if columns is None else df.loc[:, columns]
     cells = [[str(c) for c in df.columns]]
-    numeric = [pd.api.types.is_numeric_dtype(df[c]) for c in df.columns]
-    for _, row in df.iterrows():
+    numeric = [pd.api.types.is_numeric_dtype(df[c]) and not pd.api.types.is_bool_dtype(df[c]) for c in df.columns]
+    whole = [pd.api.types.is_integer_dtype(df[c]) for c in df.columns]
+    for row in df.itertuples(index=False):
         line = []
-        for value, is_num in zip(row.tolist(), numeric):
-            if is_num and isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, bool):
-                if not np.isfinite(value):
-                    line.append("-")
-                elif float(value).is_integer() and abs(value) >= 10:
-                    line.append(f"{int(value)}")
-                else:
-                    line.append(f"{value:.{digits}f}")
-            else:
+        for value, is_num, is_whole in zip(row, numeric, whole):
+            if not is_num:
                 line.append(str(value))
+            elif not np.isfinite(value):
+                line.append("-")
+            else:
+                line.append(f"{int(value)}" if is_whole else f"{value:.{digits}f}")
         cells.append(line)
     widths = [max(len(r[i]) for r in cells) for i in range(len(cells[0]))]
     lines = []

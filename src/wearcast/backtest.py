@@ -1,0 +1,295 @@
+"""As-of backtests: fit on the data as it stood at a past date, check the next horizon.
+
+For every origin ``D`` (the given origin and, optionally, earlier ones every N
+months back):
+
+1. rebuild the life table as it stood at ``D`` with
+   ``load_export(config, as_of=D)``; nothing dated after ``D`` reaches the fit;
+2. fit every model on it and predict ``P(fail within h days)`` for each unit in
+   service at ``D`` (its open row; age = exit age at ``D``);
+3. read the outcome from the export as it stood at ``D + h``: did that unit's
+   life fail within ``(D, D + h]``? Units decommissioned in the window count as
+   not failed and are censored at their decommission age for the C index.
+
+Scores per origin and model: Harrell's C of the predicted probability against
+the time to failure within the window; expected failures Σp with the 2.5 % and
+97.5 % quantiles of the Poisson-binomial count, against observed failures;
+precision of the top-k list (share of the k highest-probability units that
+failed) and its lift over a random list (the overall failure share), over an
+"oldest first" list and over the Cox baseline's list.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable, Mapping
+
+import numpy as np
+import pandas as pd
+
+from wearcast import _atomic
+from wearcast._poisson_binomial import count_pmf, pmf_quantile
+from wearcast.config import Config
+from wearcast.exceptions import ConfigError, ModelError
+from wearcast.io import load_export
+from wearcast.lifetable import LifeTable
+from wearcast.metrics import harrell_c
+from wearcast.models.base import SurvivalModel
+
+BASELINE = "cox"
+
+
+@dataclass
+class BacktestResult:
+    """Per-origin and summary scores of an as-of backtest.
+
+    ``per_origin``: one row per (origin, model); ``summary``: one row per model
+    (precision and lifts pooled over origins, counts summed, C as mean and
+    standard error); ``units``: every scored unit (origin, model, unit_id, life,
+    age_days, probability, failed, days_observed).
+    """
+
+    horizon_days: int
+    top_k: int
+    origins: list[dt.date]
+    per_origin: pd.DataFrame
+    summary: pd.DataFrame
+    units: pd.DataFrame = field(repr=False)
+    seed: int = 0
+    notes: list[str] = field(default_factory=list)
+
+
+def origin_dates(origin: dt.date, every_months: int | None, origins: int) -> list[dt.date]:
+    """``origins`` dates: ``origin`` and every ``every_months`` months back, oldest first."""
+    if origins < 1:
+        raise ConfigError(f"a backtest needs at least one origin; got origins={origins}.")
+    if origins > 1 and not every_months:
+        raise ConfigError("several backtest origins need a step: set every_months (e.g. 3).")
+    stamp = pd.Timestamp(origin)
+    dates = [(stamp - pd.DateOffset(months=int(every_months or 0) * i)).date() for i in range(origins)]
+    return sorted(dates)
+
+
+def _names(horizon_days: int, top_k: int) -> dict[str, str]:
+    h, k = int(horizon_days), int(top_k)
+    return {
+        "c": f"c_harrell_{h}d",
+        "expected": f"expected_failures_{h}d",
+        "observed": f"observed_failures_{h}d",
+        "share": f"failure_share_{h}d",
+        "precision": f"precision_top{k}_{h}d",
+        "precision_oldest": f"precision_top{k}_{h}d_oldest",
+        "lift_random": f"lift_top{k}_{h}d_vs_random",
+        "lift_oldest": f"lift_top{k}_{h}d_vs_oldest",
+        "lift_cox": f"lift_top{k}_{h}d_vs_{BASELINE}",
+    }
+
+
+def window_outcomes(at_origin: LifeTable, later: LifeTable, horizon_days: float) -> pd.DataFrame:
+    """Outcome within ``horizon_days`` for each in-service row of ``at_origin``.
+
+    ``later``: the table as it stood at origin + horizon. A unit's life is
+    matched on (unit_id, life). Returns unit_id, life, age_days (age at the
+    origin), failed (bool: a failure of that life within the window) and
+    days_observed (days of the window seen: to the failure, the end of the
+    record, or the full horizon), in the order of ``at_origin.in_service()``.
+    """
+    open_rows = at_origin.in_service().frame
+    keys = pd.DataFrame({
+        "unit_id": open_rows["unit_id"].to_numpy(),
+        "life": open_rows["life"].to_numpy(),
+        "age_days": open_rows["exit_age"].to_numpy(float),
+        "_pos": np.arange(len(open_rows)),
+    })
+    f = later.frame[["unit_id", "life", "exit_age", "failed"]]
+    joined = keys.merge(f, on=["unit_id", "life"], how="left")
+    joined = joined[joined["exit_age"] > joined["age_days"]]
+    fail_age = joined[joined["failed"]].groupby("_pos")["exit_age"].min()
+    last_age = joined.groupby("_pos")["exit_age"].max()
+    h = float(horizon_days)
+    fail = keys["_pos"].map(fail_age).to_numpy(float)
+    last = keys["_pos"].map(last_age).to_numpy(float)
+    age = keys["age_days"].to_numpy(float)
+    failed = np.isfinite(fail) & (fail <= age + h)
+    seen = np.where(failed, fail - age, np.minimum(np.nan_to_num(last, nan=age), age + h) - age)
+    out = keys.drop(columns="_pos")
+    out["failed"] = failed
+    out["days_observed"] = seen
+    return out
+
+
+def _top(values: np.ndarray, k: int) -> np.ndarray:
+    """Positions of the ``k`` largest values (ties: first listed first)."""
+    return np.argsort(-np.asarray(values, float), kind="mergesort")[:k]
+
+
+def score_origin(probability: np.ndarray, outcome: pd.DataFrame, horizon_days: int, top_k: int) -> dict:
+    """Scores of one model at one origin (lifts over Cox are filled in later)."""
+    names = _names(horizon_days, top_k)
+    p = np.asarray(probability, float)
+    failed = outcome["failed"].to_numpy(bool)
+    n = len(p)
+    k = min(int(top_k), n)
+    share = float(failed.mean()) if n else float("nan")
+    precision = float(failed[_top(p, k)].mean()) if k else float("nan")
+    oldest = float(failed[_top(outcome["age_days"].to_numpy(float), k)].mean()) if k else float("nan")
+    pmf = count_pmf(p) if n else np.ones(1)
+    low, high = pmf_quantile(pmf, [0.025, 0.975])
+    days = np.maximum(outcome["days_observed"].to_numpy(float), 1e-9)
+    return {
+        "units_in_service": n,
+        "list_length": k,
+        names["c"]: harrell_c(days, failed, p).c if n else float("nan"),
+        names["expected"]: float(p.sum()),
+        f"{names['expected']}_low": int(low),
+        f"{names['expected']}_high": int(high),
+        names["observed"]: int(failed.sum()),
+        names["share"]: share,
+        names["precision"]: precision,
+        names["precision_oldest"]: oldest,
+        names["lift_random"]: _ratio(precision, share),
+        names["lift_oldest"]: _ratio(precision, oldest),
+    }
+
+
+def _ratio(a: float, b: float) -> float:
+    return float(a / b) if np.isfinite(a) and np.isfinite(b) and b > 0 else float("nan")
+
+
+def run_backtest(
+    config: Config,
+    model_factories: Mapping[str, Callable[[int], SurvivalModel]],
+    origin: dt.date,
+    horizon_days: int,
+    every_months: int | None = None,
+    origins: int = 1,
+    top_k: int = 50,
+    seed: int = 0,
+) -> BacktestResult:
+    """Run the as-of backtest described in the module docstring.
+
+    ``model_factories``: name -> function(seed) returning an unfitted model;
+    the name ``"cox"`` is the baseline for the ``_vs_cox`` lift. Seeds for
+    every (origin, model) fit are drawn up front from
+    ``numpy.random.default_rng(seed)``. Raises :class:`ConfigError` when an
+    origin plus the horizon passes the export date.
+    """
+    if not model_factories:
+        raise ValueError("run_backtest needs at least one model factory")
+    horizon_days, top_k = int(horizon_days), int(top_k)
+    if horizon_days < 1 or top_k < 1:
+        raise ConfigError(f"horizon_days and top_k must be at least 1; got {horizon_days} and {top_k}.")
+    dates = origin_dates(origin, every_months, origins)
+    names = list(model_factories)
+    seeds = np.random.default_rng(seed).integers(0, 2**31 - 1, size=(len(dates), len(names)))
+    export_end = config.fleet.as_of
+    rows, unit_frames = [], []
+    for i, day in enumerate(dates):
+        end = day + dt.timedelta(days=horizon_days)
+        if export_end is not None and end > export_end:
+            raise ConfigError(
+                f"{config.source}: backtest origin {day} plus {horizon_days} days ends {end}, after the export "
+                f"date {export_end}; choose an origin on or before {export_end - dt.timedelta(days=horizon_days)}."
+            )
+        fit_table = load_export(config, as_of=day).table
+        _check_not_after(fit_table, day)
+        later = load_export(config, as_of=end).table
+        if export_end is None and later.as_of is not None and later.as_of.date() < end:
+            raise ConfigError(f"{config.source}: the export ends {later.as_of.date()}, before {end} "
+                              f"(origin {day} + {horizon_days} days); choose an earlier origin.")
+        outcome = window_outcomes(fit_table, later, horizon_days)
+        open_rows = fit_table.in_service()
+        X = open_rows.X
+        age = open_rows.exit
+        for j, name in enumerate(names):
+            model = model_factories[name](int(seeds[i, j]))
+            try:
+                model.fit(fit_table)
+            except ModelError as exc:
+                raise ModelError(f"backtest origin {day}, model {name}: {exc}") from exc
+            p = np.asarray(model.fail_probability(X, age, horizon_days), float)
+            rows.append({"origin": day, "model": name, "fit_rows": fit_table.n_rows,
+                         "fit_failures": fit_table.n_failures,
+                         **score_origin(p, outcome, horizon_days, top_k)})
+            unit_frames.append(outcome.assign(origin=day, model=name, probability=p))
+    per_origin = pd.DataFrame(rows)
+    _add_cox_lift(per_origin, horizon_days, top_k)
+    units = pd.concat(unit_frames, ignore_index=True)[
+        ["origin", "model", "unit_id", "life", "age_days", "probability", "failed", "days_observed"]]
+    summary = _summarise(per_origin, names, horizon_days, top_k)
+    notes = [f"Outcomes: failures recorded within {horizon_days} days after each origin; models fitted only on "
+             "records dated on or before the origin."]
+    return BacktestResult(horizon_days, top_k, dates, per_origin, summary, units, seed, notes)
+
+
+def _check_not_after(table: LifeTable, day: dt.date) -> None:
+    """Guard: the fit table must hold nothing dated after the origin."""
+    if "exit_date" in table.frame.columns and len(table.frame):
+        latest = pd.to_datetime(table.frame["exit_date"]).max()
+        if pd.notna(latest) and latest.date() > day:
+            raise ModelError(f"backtest origin {day}: the as-of table holds a record dated {latest.date()}; "
+                             "the export loader did not cut at the origin.")
+
+
+def _add_cox_lift(per_origin: pd.DataFrame, horizon_days: int, top_k: int) -> None:
+    names = _names(horizon_days, top_k)
+    base = per_origin[per_origin["model"] == BASELINE].set_index("origin")[names["precision"]]
+    per_origin[names["lift_cox"]] = [
+        _ratio(p, base.get(o, np.nan)) for o, p in zip(per_origin["origin"], per_origin[names["precision"]])
+    ]
+
+
+def _summarise(per_origin: pd.DataFrame, models: list[str], horizon_days: int, top_k: int) -> pd.DataFrame:
+    names = _names(horizon_days, top_k)
+    pooled = {}
+    out = []
+    for name in models:
+        part = per_origin[per_origin["model"] == name]
+        k = part["list_length"].to_numpy(float)
+        hits = float(np.sum(part[names["precision"]].to_numpy(float) * k))
+        hits_oldest = float(np.sum(part[names["precision_oldest"]].to_numpy(float) * k))
+        units = float(part["units_in_service"].sum())
+        failures = float(part[names["observed"]].sum())
+        precision = hits / k.sum() if k.sum() else float("nan")
+        pooled[name] = precision
+        c = part[names["c"]].to_numpy(float)
+        c = c[np.isfinite(c)]
+        out.append({
+            "model": name,
+            "origins": len(part),
+            names["c"]: float(c.mean()) if len(c) else float("nan"),
+            f"{names['c']}_se": float(c.std(ddof=1) / np.sqrt(len(c))) if len(c) > 1 else float("nan"),
+            names["expected"]: float(part[names["expected"]].sum()),
+            names["observed"]: int(failures),
+            names["share"]: failures / units if units else float("nan"),
+            names["precision"]: precision,
+            names["precision_oldest"]: hits_oldest / k.sum() if k.sum() else float("nan"),
+            names["lift_random"]: _ratio(precision, failures / units if units else float("nan")),
+            names["lift_oldest"]: _ratio(hits, hits_oldest),
+        })
+    summary = pd.DataFrame(out)
+    summary[names["lift_cox"]] = [_ratio(pooled[m], pooled.get(BASELINE, np.nan)) for m in summary["model"]]
+    return summary
+
+
+def write_backtest(result: BacktestResult, out_dir) -> list[Path]:
+    """Write backtest_origins.csv, backtest_summary.csv and backtest.json atomically."""
+    out_dir = Path(out_dir)
+    per_origin = result.per_origin.assign(origin=[d.isoformat() for d in result.per_origin["origin"]])
+    payload = {
+        "horizon_days": result.horizon_days,
+        "top_k": result.top_k,
+        "seed": result.seed,
+        "origins": [d.isoformat() for d in result.origins],
+        "notes": result.notes,
+        "per_origin": json.loads(per_origin.to_json(orient="records")),
+        "summary": json.loads(result.summary.to_json(orient="records")),
+    }
+    return [
+        _atomic.write_csv(out_dir / "backtest_origins.csv", per_origin),
+        _atomic.write_csv(out_dir / "backtest_summary.csv", result.summary),
+        _atomic.write_json(out_dir / "backtest.json", payload),
+    ]

@@ -1,0 +1,150 @@
+"""Checks of wearcast.backtest: no look-ahead, outcomes read from the export,
+list scores computed as defined."""
+
+from __future__ import annotations
+
+import datetime as dt
+import json
+import shutil
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import wearcast.backtest as backtest
+from wearcast import LifeTable
+from wearcast.config import load_config
+from wearcast.scenario import generate_scenario
+
+ORIGIN = dt.date(2025, 11, 30)
+HORIZON = 180
+
+
+@pytest.fixture(scope="module")
+def scenario(tmp_path_factory):
+    # The invented demo fleet (integration data only; the checks below are definitions).
+    folder = tmp_path_factory.mktemp("fleet")
+    return generate_scenario(folder, n_units=250, seed=11)
+
+
+def _cox_factories(log=None):
+    cox = pytest.importorskip("wearcast.models.cox")
+
+    def make(penalizer):
+        def factory(seed):
+            model = cox.CoxBaseline(penalizer, seed=seed)
+            if log is not None:
+                fit = model.fit
+
+                def spying_fit(table):
+                    log.append((table.as_of, pd.to_datetime(table.frame["exit_date"]).max()))
+                    return fit(table)
+
+                model.fit = spying_fit
+            return model
+        return factory
+
+    return {"cox": make(0.01), "cox_ridge": make(2.0)}
+
+
+def _truncated_copy(files, dest, last_day: dt.date):
+    """Copy the scenario export without anything dated after ``last_day``."""
+    dest.mkdir()
+    cut = pd.Timestamp(last_day)
+    register = pd.read_csv(files.register, parse_dates=["install_date", "decommission_date"])
+    register = register[register["install_date"] <= cut]
+    register.loc[register["decommission_date"] > cut, "decommission_date"] = pd.NaT
+    events = pd.read_csv(files.events, parse_dates=["event_date"], keep_default_na=False, na_values=[])
+    events = events[events["event_date"] <= cut]
+    readings = pd.read_csv(files.readings, parse_dates=["reading_date"])
+    readings = readings[readings["reading_date"] <= cut]
+    for frame, name in ((register, "register.csv"), (events, "events.csv"), (readings, "readings.csv")):
+        frame.to_csv(dest / name, index=False, date_format="%Y-%m-%d")
+    shutil.copy(files.config, dest / files.config.name)
+    return load_config(dest / files.config.name)
+
+
+def test_backtest_never_looks_past_the_window(scenario, tmp_path, monkeypatch):
+    config = load_config(scenario.config)
+    calls = []
+    real_loader = backtest.load_export
+
+    def spying_loader(cfg, *, as_of=None, quarantine_dir=None):
+        calls.append(as_of)
+        return real_loader(cfg, as_of=as_of, quarantine_dir=quarantine_dir)
+
+    monkeypatch.setattr(backtest, "load_export", spying_loader)
+    fits = []
+    full = backtest.run_backtest(config, _cox_factories(fits), ORIGIN, HORIZON, every_months=6, origins=2,
+                                 top_k=15, seed=3)
+    origins = full.origins
+    assert origins == [dt.date(2025, 5, 30), ORIGIN]
+    # the loader is only asked for the data as it stood at an origin or at origin + horizon
+    allowed = set(origins) | {d + dt.timedelta(days=HORIZON) for d in origins}
+    assert calls and set(calls) <= allowed and None not in calls
+    # every fit saw a table cut at its origin, holding nothing dated later
+    assert len(fits) == 4
+    for (as_of, latest), origin in zip(fits, np.repeat(origins, 2)):
+        assert as_of.date() == origin and latest.date() <= origin
+
+    # Same results when the export holds nothing after the last window's end.
+    last_end = ORIGIN + dt.timedelta(days=HORIZON)
+    cut_config = _truncated_copy(scenario, tmp_path / "cut", last_end)
+    cut = backtest.run_backtest(cut_config, _cox_factories(), ORIGIN, HORIZON, every_months=6, origins=2,
+                                top_k=15, seed=3)
+    pd.testing.assert_frame_equal(full.per_origin, cut.per_origin)
+    pd.testing.assert_frame_equal(full.units, cut.units)
+
+
+def test_outcomes_match_the_failure_log(scenario):
+    # Outcome definition: a unit in service at the origin failed when the event log holds
+    # a failure of it dated within (origin, origin + horizon].
+    config = load_config(scenario.config)
+    result = backtest.run_backtest(config, _cox_factories(), ORIGIN, 365, top_k=20, seed=1)
+    units = result.units[result.units["model"] == "cox"]
+    events = pd.read_csv(scenario.events, parse_dates=["event_date"])
+    window = events[(events["event_kind"] == "failure") & (events["event_date"] > pd.Timestamp(ORIGIN))
+                    & (events["event_date"] <= pd.Timestamp(ORIGIN + dt.timedelta(days=365)))]
+    expected = set(window["unit_id"]) & set(units["unit_id"])
+    assert set(units.loc[units["failed"], "unit_id"]) == expected
+    row = result.per_origin[result.per_origin["model"] == "cox"].iloc[0]
+    assert row["observed_failures_365d"] == len(expected)
+    assert row["expected_failures_365d"] == pytest.approx(units["probability"].sum())
+    # list scores by their definitions
+    top = units.sort_values("probability", ascending=False, kind="mergesort").head(20)
+    oldest = units.sort_values("age_days", ascending=False, kind="mergesort").head(20)
+    share = units["failed"].mean()
+    assert row["precision_top20_365d"] == pytest.approx(top["failed"].mean())
+    assert row["precision_top20_365d_oldest"] == pytest.approx(oldest["failed"].mean())
+    if share > 0:
+        assert row["lift_top20_365d_vs_random"] == pytest.approx(top["failed"].mean() / share)
+    assert row["lift_top20_365d_vs_cox"] == pytest.approx(1.0) or np.isnan(row["lift_top20_365d_vs_cox"])
+    assert row["expected_failures_365d_low"] <= row["expected_failures_365d"] <= row["expected_failures_365d_high"]
+
+
+def test_window_outcomes_by_hand():
+    # Unit A fails 40 days after the origin; B is decommissioned after 30 days; C runs on;
+    # D fails 400 days after (outside a 365-day window).
+    at_origin = LifeTable.from_frame(pd.DataFrame({
+        "unit_id": ["A", "B", "C", "D"], "entry_age": [0.0] * 4, "exit_age": [100.0, 200.0, 300.0, 50.0],
+        "failed": [False] * 4, "in_service": [True] * 4}))
+    later = LifeTable.from_frame(pd.DataFrame({
+        "unit_id": ["A", "A", "B", "C", "D", "D"], "life": [1, 2, 1, 1, 1, 1],
+        "entry_age": [0.0, 0.0, 0.0, 0.0, 0.0, 50.0], "exit_age": [140.0, 320.0, 230.0, 665.0, 50.0, 415.0],
+        "failed": [True, False, False, False, False, False]}))
+    out = backtest.window_outcomes(at_origin, later, 365)
+    assert out["failed"].tolist() == [True, False, False, False]
+    assert out["days_observed"].tolist() == [40.0, 30.0, 365.0, 365.0]
+
+
+def test_origins_and_written_files(tmp_path):
+    assert backtest.origin_dates(dt.date(2026, 3, 31), 1, 3) == [
+        dt.date(2026, 1, 31), dt.date(2026, 2, 28), dt.date(2026, 3, 31)]
+    per_origin = pd.DataFrame({"origin": [dt.date(2026, 1, 31)], "model": ["cox"], "precision_top5_90d": [0.4]})
+    result = backtest.BacktestResult(90, 5, [dt.date(2026, 1, 31)], per_origin,
+                                     pd.DataFrame({"model": ["cox"], "precision_top5_90d": [0.4]}),
+                                     pd.DataFrame())
+    paths = backtest.write_backtest(result, tmp_path)
+    assert sorted(p.name for p in paths) == ["backtest.json", "backtest_origins.csv", "backtest_summary.csv"]
+    assert json.loads((tmp_path / "backtest.json").read_text())["per_origin"][0]["origin"] == "2026-01-31"
+    assert pd.read_csv(tmp_path / "backtest_origins.csv")["precision_top5_90d"].tolist() == [0.4]
