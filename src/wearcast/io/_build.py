@@ -85,7 +85,8 @@ def build_register_log(register: pd.DataFrame, events: pd.DataFrame, readings: p
     out = BuildOutcome(frame=pd.DataFrame())
     as_of = settings.as_of
     units: dict[str, dict] = {}
-    for _, row in register.sort_values(["unit_id"], kind="mergesort").iterrows():
+    install_of = dict(zip(register["unit_id"], register["install_date"]))
+    for row in register.sort_values(["unit_id"], kind="mergesort").to_dict("records"):
         install, decom = row["install_date"], row["decommission_date"]
         if install > as_of:
             if settings.backtest:
@@ -107,11 +108,11 @@ def build_register_log(register: pd.DataFrame, events: pd.DataFrame, readings: p
             return
         order = frame.assign(_rank=frame.get("event_kind", pd.Series("", index=frame.index)).map(KIND_ORDER).fillna(0))
         sort_cols = ["unit_id", date_col, "_rank"] + (["failure_mode"] if "failure_mode" in frame else [])
-        for _, row in order.sort_values(sort_cols + ["_source", "_line"], kind="mergesort").iterrows():
+        for row in order.sort_values(sort_cols + ["_source", "_line"], kind="mergesort").to_dict("records"):
             uid, when = row["unit_id"], row[date_col]
             if uid in dropped_units:
                 # The unit's register row was rejected or lies after as_of: follow it.
-                if settings.backtest and register.loc[register["unit_id"] == uid, "install_date"].iloc[0] > as_of:
+                if settings.backtest and install_of[uid] > as_of:
                     out.after_as_of.add(_key(row))
                 else:
                     out.reject(row, "unit_id", uid, "unit's register row was rejected")
@@ -210,8 +211,8 @@ def _unit_rows(unit: dict, s: BuildSettings, out: BuildOutcome) -> list[list]:
             out.kept.add(_key(r))
     reading_dates = np.array([r["reading_date"] for r in readings], dtype="datetime64[ns]")
     if s.reading_columns:
-        values = pd.DataFrame([[r[c] for c in s.reading_columns] for r in readings],
-                              columns=list(s.reading_columns), dtype=float).ffill().bfill().to_numpy()
+        values = _carry_forward(np.array([[r[c] for c in s.reading_columns] for r in readings],
+                                         dtype=float).reshape(len(readings), len(s.reading_columns)))
     static = [unit["row"][c] for c in s.register_columns]
     obs_start = install if s.records_start is None else max(install, s.records_start)
     uid = unit["row"]["unit_id"]
@@ -220,7 +221,9 @@ def _unit_rows(unit: dict, s: BuildSettings, out: BuildOutcome) -> list[list]:
         a = max(a, obs_start)
         if b <= a:
             continue  # ended before records began: not observed
-        cuts = [a] + [pd.Timestamp(t) for t in reading_dates if a < t < b] + [b]
+        lo = int(np.searchsorted(reading_dates, np.datetime64(a), side="right"))
+        hi = int(np.searchsorted(reading_dates, np.datetime64(b), side="left"))
+        cuts = [a] + [pd.Timestamp(t) for t in reading_dates[lo:hi]] + [b]
         last_seg = open_segment and k == len(segments) - 1
         for j in range(len(cuts) - 1):
             p, q = cuts[j], cuts[j + 1]
@@ -235,6 +238,16 @@ def _unit_rows(unit: dict, s: BuildSettings, out: BuildOutcome) -> list[list]:
                     row.extend([np.nan] * len(s.reading_columns))
             rows.append(row)
     return rows
+
+
+def _carry_forward(values: np.ndarray) -> np.ndarray:
+    """Fill NaN down each column (last value carried forward), then up (first value backward).
+
+    ``values``: shape (n_readings, n_columns), readings in date order.
+    """
+    if not np.isnan(values).any():
+        return values
+    return pd.DataFrame(values).ffill().bfill().to_numpy()
 
 
 def build_from_intervals(rows: pd.DataFrame, settings: BuildSettings, *, dated: bool) -> BuildOutcome:
@@ -252,7 +265,7 @@ def build_from_intervals(rows: pd.DataFrame, settings: BuildSettings, *, dated: 
     frame = rows.copy()
     if dated and settings.backtest:
         later = (frame["entry_date"] >= settings.as_of).to_numpy()
-        for _, r in frame[later].iterrows():
+        for r in frame[later].to_dict("records"):
             out.after_as_of.add(_key(r))
         frame = frame[~later].copy()
         cut = frame["exit_date"] > settings.as_of
@@ -261,11 +274,11 @@ def build_from_intervals(rows: pd.DataFrame, settings: BuildSettings, *, dated: 
         frame.loc[cut, "failed"] = False
         frame.loc[cut, "mode"] = ""
     negative = frame["entry_age"] < 0
-    for _, r in frame[negative].iterrows():
+    for r in frame[negative].to_dict("records"):
         out.reject(r, "entry", r["entry_age"], "negative entry age")
     frame = frame[~negative]
     short = frame["exit_age"] <= frame["entry_age"]
-    for _, r in frame[short].iterrows():
+    for r in frame[short].to_dict("records"):
         out.reject(r, "exit", r["exit_age"], "exit not after entry (zero or negative duration)")
     frame = frame[~short]
     order = frame.sort_values(["unit_id", "life", "entry_age", "exit_age", "failed", "mode", "_source", "_line"],
@@ -278,12 +291,11 @@ def build_from_intervals(rows: pd.DataFrame, settings: BuildSettings, *, dated: 
             last_key, last_exit = (uid, lf), -np.inf
         if entry < last_exit:
             keep[i] = False
-            out.reject(order.iloc[i], "entry", entry, "interval overlaps another interval of the same life")
+            out.reject(order.iloc[i].to_dict(), "entry", entry, "interval overlaps another interval of the same life")
             continue
         last_exit = exit_
     frame = order[keep].copy()
-    for _, r in frame.iterrows():
-        out.kept.add(_key(r))
+    out.kept.update(zip(frame["_source"].astype(str), frame["_line"].astype(int)))
     last = frame.groupby(["unit_id", "life"], sort=False)["exit_age"].transform("max") == frame["exit_age"]
     top_life = frame.groupby("unit_id", sort=False)["life"].transform("max") == frame["life"]
     in_service = last & top_life & ~frame["failed"].astype(bool)

@@ -43,21 +43,33 @@ class Quarantine:
         Rows already in the quarantine keep their first reason.
         """
         mask = np.asarray(mask, dtype=bool)
-        for i in np.flatnonzero(mask):
-            row = rows.iloc[i]
-            key = (str(row["_source"]), int(row["_line"]))
-            if key in self._keys:
-                continue
-            col = column if isinstance(column, str) else str(column.iloc[i])
-            why = reason if isinstance(reason, str) else str(reason.iloc[i])
-            if values is not None:
-                value = str(values.iloc[i])
-            else:
-                value = str(row[col]) if col in row.index else ""
-            self._keys.add(key)
-            self._records.append({"source_file": key[0], "line": key[1], "column": col,
-                                  "value": value, "reason": why, "original_row": str(row["_raw"])})
+        picked = np.flatnonzero(mask)
+        if not len(picked):
+            return mask
+        sources = rows["_source"].to_numpy()[picked]
+        lines = rows["_line"].to_numpy()[picked]
+        raws = rows["_raw"].to_numpy()[picked]
+        cols = [column] * len(picked) if isinstance(column, str) else [str(c) for c in column.to_numpy()[picked]]
+        whys = [reason] * len(picked) if isinstance(reason, str) else [str(r) for r in reason.to_numpy()[picked]]
+        if values is not None:
+            cells = [str(v) for v in values.to_numpy()[picked]]
+        elif isinstance(column, str) and column in rows:
+            cells = [str(v) for v in rows[column].to_numpy()[picked]]
+        else:
+            cells = [str(rows[c].iloc[i]) if c in rows else "" for c, i in zip(cols, picked)]
+        for source, line, raw, col, why, value in zip(sources, lines, raws, cols, whys, cells):
+            self.add(str(source), int(line), col, value, why, str(raw))
         return mask
+
+    def add(self, source: str, line: int, column: str, value: str, reason: str, original_row: str) -> bool:
+        """Record one row; False when it was already recorded (it keeps its first reason)."""
+        key = (source, int(line))
+        if key in self._keys:
+            return False
+        self._keys.add(key)
+        self._records.append({"source_file": source, "line": key[1], "column": column, "value": value,
+                              "reason": reason, "original_row": original_row})
+        return True
 
     def frame(self) -> pd.DataFrame:
         """The rejected rows sorted by file and line (columns QUARANTINE_COLUMNS)."""

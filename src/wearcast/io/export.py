@@ -82,7 +82,9 @@ def _check_common(frame: pd.DataFrame, q: Quarantine) -> np.ndarray:
 
 
 def _rejected(frame: pd.DataFrame, q: Quarantine) -> np.ndarray:
-    return np.array([q.has(s, l) for s, l in zip(frame["_source"], frame["_line"])], dtype=bool)
+    keys = q.keys()
+    return np.fromiter(((s, int(l)) in keys for s, l in zip(frame["_source"], frame["_line"])),
+                       dtype=bool, count=len(frame))
 
 
 def _dates(frame: pd.DataFrame, col: str, q: Quarantine, config: Config, day_first, *, required: bool) -> None:
@@ -117,13 +119,12 @@ def _latest_date(*series: pd.Series) -> pd.Timestamp:
     dates = [s.max() for s in series if s is not None and len(s) and pd.notna(s.max())]
     if not dates:
         raise DataError("the export holds no usable dates, so as_of cannot be found. Set fleet.as_of.")
-    return max(dates).normalize() if max(dates) != max(dates).normalize() else max(dates)
+    return max(dates)
 
 
 def _merge(outcome: BuildOutcome, q: Quarantine, raws: dict[tuple[str, int], str]) -> None:
     for source, line, column, value, reason in outcome.rejected:
-        row = pd.DataFrame([{"_source": source, "_line": line, "_raw": raws[(source, line)]}])
-        q.reject(row, [True], column, reason, values=pd.Series([value]))
+        q.add(source, line, column, value, reason, raws[(source, line)])
 
 
 def _raw_index(*tables: RawTable | None) -> dict[tuple[str, int], str]:
