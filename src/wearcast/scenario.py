@@ -395,7 +395,7 @@ def true_fail_probability(truth: pd.DataFrame, age_days=None, horizon_days: floa
     return 1.0 - np.exp(-np.exp(truth["log_risk_now"].to_numpy(float)) * increment)
 
 
-def true_population_survival(ages_days, effects: str = "nonlinear", n_lives: int = 200_000) -> np.ndarray:
+def true_population_survival(ages_days, effects: str = "nonlinear", n_lives: int = 100_000) -> np.ndarray:
     """Survival curve of a freshly installed unit drawn from the fleet's covariates.
 
     ``S(t) = E[exp(-Lambda(t))]`` over static covariates, duty class, wear and
