@@ -107,7 +107,10 @@ def build_register_log(register: pd.DataFrame, events: pd.DataFrame, readings: p
         if frame is None or frame.empty:
             return
         order = frame.assign(_rank=frame.get("event_kind", pd.Series("", index=frame.index)).map(KIND_ORDER).fillna(0))
-        sort_cols = ["unit_id", date_col, "_rank"] + (["failure_mode"] if "failure_mode" in frame else [])
+        # Same-date rows are ordered by their contents, never by file position, so the
+        # row that wins (and the one quarantined as a repeat) does not depend on row order.
+        sort_cols = ["unit_id", date_col, "_rank"] + (["failure_mode"] if "failure_mode" in frame else []) \
+            + [c for c in settings.reading_columns if c in frame]
         for row in order.sort_values(sort_cols + ["_source", "_line"], kind="mergesort").to_dict("records"):
             uid, when = row["unit_id"], row[date_col]
             if uid in dropped_units:
