@@ -116,3 +116,20 @@ def test_numbers_reject_text_and_ambiguous_separators():
     assert bad.tolist() == [False, False, True, True]
     _, bad = _parse.parse_numbers(pd.Series(["1.234,5"]), decimal=",")
     assert bad.tolist() == [True]
+
+
+def test_excel_register_and_parquet_log_load_end_to_end(tmp_path):
+    from wearcast.config import config_from_dict
+    from wearcast.io import load_export
+
+    pd.DataFrame({"unit_id": ["00042", "00107"],
+                  "install_date": pd.to_datetime(["2021-03-01", "2021-04-01"])}).to_excel(
+        tmp_path / "register.xlsx", index=False)  # real Excel date cells
+    pd.DataFrame({"unit_id": ["00042"], "event_date": pd.to_datetime(["2021-05-01"]),
+                  "event_kind": ["failure"]}).to_parquet(tmp_path / "events.parquet")
+    cfg = config_from_dict({"input": {"register": "register.xlsx", "events": "events.parquet"},
+                            "fleet": {"as_of": "2021-06-01"}})
+    cfg = cfg.__class__(**{**cfg.__dict__, "base_dir": tmp_path})
+    f = load_export(cfg).table.frame
+    assert f[["unit_id", "life", "entry_age", "exit_age", "failed"]].values.tolist() == [
+        ["00042", 1, 0.0, 61.0, True], ["00042", 2, 0.0, 31.0, False], ["00107", 1, 0.0, 61.0, False]]
