@@ -126,7 +126,7 @@ def hazard_shape(curve: dict[str, np.ndarray]) -> tuple[str, str]:
 
     Compares the rate in the youngest fifth, the middle and the oldest fifth of
     the grid. ``phase`` is one of ``"falling"``, ``"rising"``, ``"bathtub"``,
-    ``"flat"`` or ``"unclear"``; a shape is called only when the two rates
+    ``"flat"`` or ``"unclear"``; a shape is called only when two of the rates
     differ by half or more, and the sentence says when their 95 % bands overlap.
     """
     rate, low, high = curve["rate"], curve["low"], curve["high"]
@@ -138,10 +138,14 @@ def hazard_shape(curve: dict[str, np.ndarray]) -> tuple[str, str]:
     early, middle, late = (float(np.mean(rate[p])) for p in parts)
     lo = [float(np.mean(low[p])) for p in parts]
     hi = [float(np.mean(high[p])) for p in parts]
-    falls = early > 1.5 * middle
-    rises = late > 1.5 * middle
-    sure_fall = falls and lo[0] > hi[1]
-    sure_rise = rises and lo[2] > hi[1]
+    # a shape is called when one part differs from the middle by half or more, or the
+    # young part is well below the middle and the old part no lower (a steady rise)
+    falls_late = early > 1.5 * middle
+    rises_late = late > 1.5 * middle
+    falls = falls_late or (middle > 1.5 * late and early >= middle)
+    rises = rises_late or (middle > 1.5 * early and late >= middle)
+    sure_fall = (falls_late and lo[0] > hi[1]) or (lo[1] > hi[2] and early >= middle)
+    sure_rise = (rises_late and lo[2] > hi[1]) or (lo[1] > hi[0] and late >= middle)
     if falls and rises:
         phase, text = "bathtub", ("higher at young and old ages than in mid-life (a bathtub shape: "
                                   "early failures, then a random phase, then wear-out)")
