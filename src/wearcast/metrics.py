@@ -216,24 +216,22 @@ def time_dependent_auc(
 
     test_exit, test_event, risk = _arrays(test_exit, test_event, risk)
     train_exit, train_event = np.asarray(train_exit, float), np.asarray(train_event, bool)
-    out = {}
     lo, hi = test_exit.min(initial=np.inf), test_exit.max(initial=-np.inf)
     train_max = train_exit.max(initial=-np.inf)
-    if len(horizons_days):
-        test_exit, test_event = _end_follow_up(test_exit, test_event, max(map(float, horizons_days)))
-    for h in horizons_days:
-        h = float(h)
-        usable = lo <= h < hi and h < train_max and (test_event & (test_exit <= h)).any() and (test_exit > h).any()
-        if not usable:
-            out[h] = float("nan")
-            continue
-        try:
-            auc, _ = cumulative_dynamic_auc(
-                _surv(train_event, train_exit), _surv(test_event, test_exit), risk, np.array([h])
-            )
-            out[h] = float(np.asarray(auc).ravel()[0])
-        except ValueError:
-            out[h] = float("nan")
+    wanted = [float(h) for h in horizons_days]
+    out = {h: float("nan") for h in wanted}
+    usable = [h for h in wanted
+              if lo <= h < hi and h < train_max and (test_event & (test_exit <= h)).any() and (test_exit > h).any()]
+    if not usable:
+        return out
+    test_exit, test_event = _end_follow_up(test_exit, test_event, max(usable))
+    times = np.unique(usable)
+    try:
+        auc, _ = cumulative_dynamic_auc(_surv(train_event, train_exit), _surv(test_event, test_exit), risk, times)
+    except ValueError:
+        return out
+    for t, value in zip(times, np.atleast_1d(auc)):
+        out[float(t)] = float(value)
     return out
 
 
