@@ -349,6 +349,8 @@ def test_top_units_table_shows_the_ranked_file(built):
             assert float(values[field]) == pytest.approx(float(ranked.loc[unit, field]), rel=1e-12), (unit, field)
         for driver in ranked.loc[unit, ["driver_1", "driver_2", "driver_3"]]:
             assert driver in cells
+        flag = "flag-stable" if ranked.loc[unit, "top50_stable"] else "flag-unstable"
+        assert flag in cells, (unit, flag)
 
 
 def test_data_quality_counts_and_caution_are_shown(built):

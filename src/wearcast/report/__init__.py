@@ -174,8 +174,13 @@ def report_inputs_from_run_folder(folder: str | Path, **overrides: Any) -> Repor
         "data_quality": _read_json(folder, "check_summary.json"),
         "group_by": summary.get("group_by"),
     }
-    if values["fleet_forecast"] is not None:
-        values["fleet_forecast"]["group"] = values["fleet_forecast"]["group"].fillna("").astype(str)
+    forecast = values["fleet_forecast"]
+    if forecast is not None:
+        forecast["group"] = forecast["group"].fillna("").astype(str)
+        if values["group_by"] is None and "group_by" in forecast.columns:
+            # the first grouping the forecast was split by (ranking's group_by) also groups the fleet curves
+            named = [g for g in forecast["group_by"].dropna().astype(str) if g.lower() not in ("fleet", "")]
+            values["group_by"] = named[0] if named else None
     if values["calibration"] is None and isinstance(metrics.get("calibration"), list):
         values["calibration"] = pd.DataFrame(metrics["calibration"])
     if values["comparison"] is None and isinstance(metrics.get("models"), dict):

@@ -171,6 +171,8 @@ def _share_cell(col: str):
     def render(row: pd.Series) -> str:
         stable = row.get(col.replace("_share", "_stable"))
         flag = ""
+        if isinstance(stable, str):  # read back from CSV as text
+            stable = {"true": True, "false": False}.get(stable.strip().lower())
         if not h.is_missing(stable):
             flag = (' <span class="flag-stable">stable</span>' if bool(stable)
                     else ' <span class="flag-unstable">unsettled</span>')
