@@ -148,3 +148,11 @@ def test_origins_and_written_files(tmp_path):
     assert sorted(p.name for p in paths) == ["backtest.json", "backtest_origins.csv", "backtest_summary.csv"]
     assert json.loads((tmp_path / "backtest.json").read_text())["per_origin"][0]["origin"] == "2026-01-31"
     assert pd.read_csv(tmp_path / "backtest_origins.csv")["precision_top5_90d"].tolist() == [0.4]
+
+
+def test_window_past_the_export_date_is_refused(scenario):
+    from wearcast.exceptions import ConfigError
+
+    config = load_config(scenario.config)  # the scenario's export date is 2026-11-30
+    with pytest.raises(ConfigError, match="after the export date"):
+        backtest.run_backtest(config, _cox_factories(), dt.date(2026, 10, 1), 90, top_k=5)

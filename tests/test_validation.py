@@ -14,6 +14,7 @@ from sksurv.metrics import concordance_index_censored, concordance_index_ipcw
 from sksurv.util import Surv
 
 from wearcast import LifeTable
+from wearcast.exceptions import ConfigError
 from wearcast.validation import (
     compare_models,
     cross_validate,
@@ -64,7 +65,7 @@ def test_grouped_folds_keep_units_whole_and_repeat_by_seed():
     assert all(np.array_equal(a[1], b[1]) for a, b in zip(folds, again))
     other = grouped_folds(table, 4, seed=4)
     assert not all(np.array_equal(a[1], b[1]) for a, b in zip(folds, other))
-    with pytest.raises(ValueError):
+    with pytest.raises(ConfigError, match="folds"):
         grouped_folds(table, 41, seed=0)
 
 

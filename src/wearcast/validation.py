@@ -28,7 +28,7 @@ import pandas as pd
 
 from wearcast import _atomic
 from wearcast._metrics_concordance import truncated_concordance_counts
-from wearcast.exceptions import ModelError
+from wearcast.exceptions import ConfigError, ModelError
 from wearcast.lifetable import LifeTable
 from wearcast.metrics import (
     IPCW_ENTRY_NOTE,
@@ -101,12 +101,15 @@ def grouped_folds(table: LifeTable, k: int, seed: int) -> list[tuple[np.ndarray,
     """``k`` (train_rows, test_rows) pairs of row positions; all rows of a unit share a fold.
 
     Units are shuffled by ``seed`` and dealt round-robin, so fold sizes differ
-    by at most one unit. Raises ``ValueError`` when there are fewer units than folds.
+    by at most one unit. Raises :class:`ConfigError` when there are fewer units than folds.
     """
     codes = table.unit_codes()
     n_units = int(codes.max()) + 1 if len(codes) else 0
     if k < 2 or n_units < k:
-        raise ValueError(f"cannot make {k} unit-grouped folds from {n_units} units; use 2 <= folds <= units")
+        raise ConfigError(
+            f"cannot make {k} unit-grouped folds from {n_units} units; set [validation] folds "
+            f"between 2 and {max(2, n_units)}."
+        )
     fold_of_unit = np.empty(n_units, dtype=np.int64)
     fold_of_unit[np.random.default_rng(seed).permutation(n_units)] = np.arange(n_units) % k
     fold = fold_of_unit[codes]
