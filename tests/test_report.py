@@ -78,6 +78,8 @@ def comparison() -> pd.DataFrame:
         for m, shift in (("c_harrell", 0.0), ("c_truncation", -0.01), ("c_uno_tau_1825d", -0.02)):
             row[m], row[f"{m}_low"], row[f"{m}_high"] = c + shift, c + shift - 0.04, c + shift + 0.04
             row[f"{m}_vs_cox"] = c - 0.66
+        row["expected_failures_90d"], row["observed_failures_90d"] = 31.5, 29.25
+        row["calibration_slope_90d"], row["calibration_slope_90d_low"], row["calibration_slope_90d_high"] = 0.9, 0.7, 1.1
         rows.append(row)
     return pd.DataFrame(rows)
 
@@ -90,8 +92,10 @@ def calibration() -> pd.DataFrame:
 
 
 def backtest_summary() -> pd.DataFrame:
-    return pd.DataFrame({"model": ["boosted", "cox"], "precision_top50_90d": [0.22, 0.18],
-                         "precision_oldest_top50_90d": [0.1, 0.1], "lift_top50_90d_vs_oldest": [2.2, 1.8]})
+    return pd.DataFrame({"model": ["boosted", "cox"], "c_harrell_90d": [0.7, 0.66], "expected_failures_90d": [30.1, 29.0],
+                         "observed_failures_90d": [28, 28], "precision_top50_90d": [0.22, 0.18],
+                         "precision_top50_90d_oldest": [0.1, 0.1], "lift_top50_90d_vs_oldest": [2.2, 1.8],
+                         "lift_top50_90d_vs_random": [3.1, 2.5], "auc_90d": [0.7, 0.6]})
 
 
 def life_table(n: int = 300, seed: int = 5) -> LifeTable:
@@ -364,6 +368,16 @@ def test_data_quality_counts_and_caution_are_shown(built):
     text = " ".join(" ".join(parsed.text).split())
     assert CAUTION in text
     assert "working today" in text and "not guarantees" in text
+
+
+def test_evidence_tables_show_the_validation_files(built):
+    folder, _, page, parsed = built
+    comparison_file = pd.read_csv(folder / "comparison.csv").set_index("model")
+    table = page.split('class="calibration-counts"')[1].split("</table>")[0]
+    shown = [float(v) for v in re.findall(r'data-field="expected" data-value="([^"]+)"', table)]
+    assert shown == comparison_file["expected_failures_90d"].tolist()
+    backtest = page.split('class="backtest"')[1].split("</table>")[0]
+    assert "auc_90d" not in backtest and 'data-field="precision_top50_90d_oldest"' in backtest
 
 
 def test_sections_come_in_reading_order(built):

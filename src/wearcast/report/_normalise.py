@@ -164,8 +164,8 @@ def cv_curve_with_band(curve: Any, fold_curves: Any = None) -> pd.DataFrame | No
 def backtest_long(backtest: pd.DataFrame) -> tuple[pd.DataFrame | None, str]:
     """Rows ``label, value`` of top-k precision for each model and the oldest-first rule.
 
-    Looks for ``precision_top{k}_{h}d`` (per model row, averaged over as-of
-    dates) and ``precision_oldest_top{k}_{h}d``/``oldest_precision...``.
+    Looks for ``precision_top{k}_{h}d`` (one row per model, pooled over as-of
+    dates; docs/metrics.md) and ``precision_top{k}_{h}d_oldest``.
     """
     if backtest is None or backtest.empty:
         return None, ""
@@ -180,8 +180,34 @@ def backtest_long(backtest: pd.DataFrame) -> tuple[pd.DataFrame | None, str]:
     grouped = backtest.groupby(label_col, sort=False) if label_col else [("model", backtest)]
     for name, part in grouped:
         rows.append({"label": str(name), "value": float(part[col].mean())})
-    oldest = [c for c in backtest.columns if "oldest" in str(c) and "precision" in str(c)]
+    oldest = [c for c in (f"{col}_oldest", f"precision_oldest_top{k}_{h}d") if c in backtest.columns]
     if oldest:
         rows.append({"label": "oldest first", "value": float(backtest[oldest[0]].mean())})
     label = f"share of the top {k} that failed within {h} days"
     return pd.DataFrame(rows), label
+
+
+def backtest_columns(backtest: pd.DataFrame) -> list[str]:
+    """The backtest summary columns worth a table: model, precision, lift, C, counts."""
+    keep = re.compile(r"^(model|origins|precision_top\d+_\d+d(_oldest)?|lift_top\d+_\d+d_vs_\w+|"
+                      r"c_harrell_\d+d|expected_failures_\d+d|observed_failures_\d+d)$")
+    return [c for c in backtest.columns if keep.match(str(c))]
+
+
+def calibration_counts(comparison: pd.DataFrame) -> pd.DataFrame | None:
+    """Expected against observed failures per model and horizon from the comparison table."""
+    if comparison is None or comparison.empty or "model" not in comparison.columns:
+        return None
+    rows = []
+    for col in comparison.columns:
+        m = re.fullmatch(r"expected_failures_(\d+)d", str(col))
+        if not m or f"observed_failures_{m.group(1)}d" not in comparison.columns:
+            continue
+        h = int(m.group(1))
+        for _, row in comparison.iterrows():
+            rows.append({"model": row["model"], "horizon_days": h, "expected": row[col],
+                         "observed": row[f"observed_failures_{h}d"],
+                         "slope": row.get(f"calibration_slope_{h}d", np.nan),
+                         "slope_low": row.get(f"calibration_slope_{h}d_low", np.nan),
+                         "slope_high": row.get(f"calibration_slope_{h}d_high", np.nan)})
+    return pd.DataFrame(rows) if rows else None

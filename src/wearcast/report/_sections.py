@@ -212,6 +212,18 @@ def evidence(inputs) -> Section:
             "Each point compares the group's average prediction with the share that actually failed. "
             "Points on the dotted diagonal mean the probabilities can be taken at face value; points "
             "below it mean the model over-states risk, above it under-states risk.", wide=False))
+    counts = norm.calibration_counts(inputs.comparison)
+    if counts is not None:
+        if "calibration" not in figures:
+            parts.append("<h3>Are the probabilities about right?</h3>")
+        parts.append(h.table(counts, [
+            h.Column("Model", "model", numeric=False), h.Column("Horizon (days)", "horizon_days", h.fmt_count),
+            h.Column("Expected failures", "expected", h.fmt_expected),
+            h.Column("Observed (allowing for suspensions)", "observed", h.fmt_expected),
+            h.Column("Calibration slope", "slope", h.fmt_number, render=_interval_cell("slope", h.fmt_number))],
+            cls="calibration-counts",
+            caption="Held-out units in cross-validation: failures the model expected against those that "
+                    "happened. A calibration slope near 1 means the spread of the probabilities is right."))
     back, label = norm.backtest_long(inputs.backtest_summary)
     if back is not None:
         figures["backtest"] = _figures.backtest_figure(back, label)
@@ -222,7 +234,7 @@ def evidence(inputs) -> Section:
             f"{label}, averaged over those dates. The orange bar is the simple rule of inspecting the "
             "oldest units first."))
     if inputs.backtest_summary is not None and not inputs.backtest_summary.empty:
-        bt = inputs.backtest_summary
+        bt = inputs.backtest_summary.loc[:, norm.backtest_columns(inputs.backtest_summary)]
         cols = [h.Column(c.replace("_", " "), c, h.fmt_number if pd.api.types.is_float_dtype(bt[c]) else h.fmt_text,
                          numeric=pd.api.types.is_numeric_dtype(bt[c])) for c in bt.columns]
         parts.append(h.table(bt, cols, cls="backtest", caption="Backtest results as written by the run."))
