@@ -4,7 +4,6 @@ worked examples."""
 from __future__ import annotations
 
 import numpy as np
-import pandas as pd
 import pytest
 from sklearn.metrics import roc_auc_score
 from sksurv.datasets import load_flchain, load_gbsg2, load_whas500
