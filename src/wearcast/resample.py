@@ -202,8 +202,41 @@ def refit_fingerprint(table, model, seed: int, n_refits: int, horizons_days, ran
 
 
 # -- one refit -------------------------------------------------------------------------
+class _SharedTable:
+    """A life table handed to local worker processes through one parquet file.
+
+    Pickling a large table for every refit costs more than reading it once per
+    worker: the handle pickles as the file's path, and each worker keeps the
+    table it read last.
+    """
+
+    _cache: dict = {}
+
+    def __init__(self, table, folder: Path, key: str):
+        self.path = folder / f"table-{key[:16]}.parquet"
+        self.key = key
+        self.parts = (table.covariates, table.categorical, table.as_of)
+        table.frame.to_parquet(self.path, index=False)
+        self._table = table
+
+    def __getstate__(self):
+        return {"path": self.path, "key": self.key, "parts": self.parts, "_table": None}
+
+    def get(self):
+        if self._table is None:
+            if self.key not in _SharedTable._cache:
+                from wearcast.lifetable import LifeTable
+
+                _SharedTable._cache.clear()
+                _SharedTable._cache[self.key] = LifeTable(pd.read_parquet(self.path), *self.parts)
+            self._table = _SharedTable._cache[self.key]
+        return self._table
+
+
 def _refit_task(table, fresh_model, index: int, draw_seed: int, horizons, rank_column: int):
     """Fit one bootstrap refit; returns (index, p (n, H) float32, ranks (n,), log risk (n,))."""
+    if isinstance(table, _SharedTable):
+        table = table.get()
     sample = table.bootstrap_units(np.random.default_rng(draw_seed))
     fresh_model.fit(sample)
     rows, _, ages = current_units(table)
@@ -280,10 +313,12 @@ def _run_joblib(table, copies, draws, todo, horizons, rank_column, jobs, on_resu
     from joblib import Parallel, delayed
 
     n_jobs = -1 if jobs == 0 else jobs
-    parallel = Parallel(n_jobs=n_jobs, return_as="generator_unordered")
-    for result in parallel(delayed(_refit_task)(table, copies[i], i, draws[i], horizons, rank_column)
-                           for i in todo):
-        on_result(result)
+    with tempfile.TemporaryDirectory(prefix="wearcast-table-") as folder:
+        shared = _SharedTable(table, Path(folder), table_hash(table))
+        parallel = Parallel(n_jobs=n_jobs, return_as="generator_unordered")
+        for result in parallel(delayed(_refit_task)(shared, copies[i], i, draws[i], horizons, rank_column)
+                               for i in todo):
+            on_result(result)
 
 
 def _run_dask(scheduler, table, copies, draws, todo, horizons, rank_column, on_result) -> None:
