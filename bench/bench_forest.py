@@ -145,12 +145,12 @@ def child(model: str, cache: Path, n_units: int) -> dict:
     out["fit_predict_rss_mb"] = peak - baseline
     if score_test:
         exit_, event = test.exit[test_rows], test.event[test_rows]
-        out["harrell_c"] = metrics.harrell_c(exit_, event, risk).estimate
-        out["trunc_c"] = metrics.truncation_aware_c(test_entry, exit_, event, risk).estimate
+        out["harrell_c"] = metrics.harrell_c(exit_, event, risk).c
+        out["trunc_c"] = metrics.truncation_aware_c(test_entry, exit_, event, risk).c
         truth = read_truth(_cache_paths(cache, *TEST)[2])
         oracle = true_log_risk(truth, test.frame.iloc[test_rows])
-        out["oracle_harrell_c"] = metrics.harrell_c(exit_, event, oracle).estimate
-        out["oracle_trunc_c"] = metrics.truncation_aware_c(test_entry, exit_, event, oracle).estimate
+        out["oracle_harrell_c"] = metrics.harrell_c(exit_, event, oracle).c
+        out["oracle_trunc_c"] = metrics.truncation_aware_c(test_entry, exit_, event, oracle).c
     return out
 
 
