@@ -144,3 +144,21 @@ def test_comparison_table_intervals_and_paired_differences(tmp_path):
     lines = text.splitlines()
     assert len(lines) == 4 and lines[0].startswith("model")
     assert len({len(line) for line in lines}) == 1  # aligned columns
+
+
+def test_concordance_only_bootstrap_matches_full_bootstrap_and_spreads_the_rest():
+    cox = pytest.importorskip("wearcast.models.cox")
+    table = _rossi_table()
+    models = {"cox": cox.CoxBaseline(penalizer=0.0), "ridge": cox.CoxBaseline(penalizer=5.0)}
+    result = cross_validate(models, table, k=3, seed=2, horizons_days=[90, 180])
+    full = compare_models(result, bootstrap=10, seed=4)
+    quick = compare_models(result, bootstrap=10, seed=4, resampled_columns=("c_harrell", "c_truncation"))
+    assert list(full.columns) == list(quick.columns)
+    for col in ("c_harrell", "c_truncation"):
+        for suffix in ("", "_low", "_high", "_vs_cox_low", "_vs_cox_high"):
+            np.testing.assert_allclose(quick[col + suffix], full[col + suffix])
+    ridge = quick.set_index("model").loc["ridge"]
+    per_fold = result.per_fold[result.per_fold["model"] == "ridge"]["auc_180d"].to_numpy(float)
+    se = per_fold.std(ddof=1) / np.sqrt(len(per_fold))
+    assert ridge["auc_180d_high"] - ridge["auc_180d"] == pytest.approx(1.959963984540054 * se)
+    assert quick.attrs["interval_method"]["auc_180d"].startswith("normal interval")

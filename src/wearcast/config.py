@@ -127,6 +127,7 @@ class ValidationSection:
     folds: int = 5
     horizons_days: list[int] = field(default_factory=lambda: [90, 365])
     bootstrap: int = 200
+    calibration_share: float = 0.25  # a candidate whose expected/observed count is off by more is not eligible
 
 
 @dataclass(frozen=True)

@@ -21,7 +21,7 @@ from __future__ import annotations
 import json
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Mapping
+from typing import Mapping, Sequence
 
 import numpy as np
 import pandas as pd
@@ -285,6 +285,49 @@ def _summarise(per_fold: pd.DataFrame, names: list[str], columns: list[str]) -> 
 
 
 # -- comparison with bootstrap intervals ------------------------------------------------
+_CONCORDANCE = ("c_harrell", "c_truncation")
+
+
+def _concordance_only(s: FoldScores, horizons_days, tau_days: float, brier_times) -> dict[str, float]:
+    """The two concordance indices of :func:`fold_metrics`, without the IPCW metrics."""
+    before = np.full(len(s.exit), min(0.0, float(s.exit.min(initial=0.0))) - 1.0)
+    return {"c_harrell": truncated_concordance_counts(before, s.exit, s.event, s.risk)["c"],
+            "c_truncation": truncated_concordance_counts(s.entry, s.exit, s.event, s.risk)["c"]}
+
+
+def _fold_spread_intervals(result: CVResult, name: str, baseline: str | None, columns, level: float) -> dict:
+    """Normal intervals from per-fold values (and per-fold paired differences)."""
+    from scipy.stats import norm
+
+    z = float(norm.ppf(0.5 + level / 2))
+    per_fold = result.per_fold.set_index(["model", "fold"])
+    out = {}
+    for col in columns:
+        mine = per_fold.loc[name, col].to_numpy(float)
+        summed = col.startswith(_SUMMED)
+        out.update(_normal_interval(col, mine, summed, z))
+        if baseline is None:
+            out[f"{col}_vs_cox"] = out[f"{col}_vs_cox_low"] = out[f"{col}_vs_cox_high"] = np.nan
+            continue
+        diff = mine - per_fold.loc[baseline, col].to_numpy(float)
+        d = _normal_interval(col, diff, summed, z)
+        out[f"{col}_vs_{baseline}"], out[f"{col}_vs_{baseline}_low"], out[f"{col}_vs_{baseline}_high"] = (
+            d[col], d[f"{col}_low"], d[f"{col}_high"])
+    return out
+
+
+def _normal_interval(col: str, values: np.ndarray, summed: bool, z: float) -> dict:
+    finite = values[np.isfinite(values)]
+    if len(finite) < 2:
+        est = float(finite.sum() if summed else finite.mean()) if len(finite) else np.nan
+        return {col: est, f"{col}_low": np.nan, f"{col}_high": np.nan}
+    if summed:
+        est, se = float(finite.sum()), float(np.sqrt(len(finite)) * finite.std(ddof=1))
+    else:
+        est, se = float(finite.mean()), float(finite.std(ddof=1) / np.sqrt(len(finite)))
+    return {col: est, f"{col}_low": est - z * se, f"{col}_high": est + z * se}
+
+
 def _resampled(s: FoldScores, idx: np.ndarray) -> FoldScores:
     return FoldScores(s.entry[idx], s.exit[idx], s.event[idx], s.units[idx], s.risk[idx],
                       {h: p[idx] for h, p in s.prob.items()}, s.survival[idx], s.train_exit,
@@ -310,6 +353,7 @@ def compare_models(
     seed: int = 0,
     baseline: str = BASELINE,
     level: float = 0.95,
+    resampled_columns: Sequence[str] | None = None,
 ) -> pd.DataFrame:
     """One row per model: every metric, its bootstrap interval and the paired
     difference against ``baseline``.
@@ -321,8 +365,18 @@ def compare_models(
     computed on the same resamples. ``expected_failures_<h>d_pb_low/_high``:
     the Poisson-binomial interval Σp ± 1.96 √Σp(1-p) of the expected count.
     The baseline columns are NaN when ``baseline`` is not among the models.
+
+    ``resampled_columns``: the metrics given bootstrap intervals (default: all).
+    The IPCW metrics and calibration cost tens of milliseconds per fold and
+    resample, so a fit stage may bootstrap only the concordance indices; the
+    other metrics then get a normal interval from the spread over folds (mean
+    ± z·se, and for ``_vs_cox`` the per-fold paired differences). The
+    attribute ``interval_method`` of the result says which is which.
     """
-    columns = metric_columns(result.horizons_days, result.tau_days)
+    all_columns = metric_columns(result.horizons_days, result.tau_days)
+    columns = all_columns if resampled_columns is None else [c for c in all_columns if c in set(resampled_columns)]
+    fold_spread = [c for c in all_columns if c not in columns]
+    evaluate = _concordance_only if set(columns) <= set(_CONCORDANCE) else fold_metrics
     rng = np.random.default_rng(seed)
     fold_seeds = rng.integers(0, 2**31 - 1, size=result.k)
     # the same resamples for every model (paired differences)
@@ -333,8 +387,8 @@ def compare_models(
         folds = result.scores[name]
         point[name] = result.summary.set_index("model").loc[name, columns].astype(float).to_dict()
         boot[name] = pd.DataFrame([
-            _combine([fold_metrics(_resampled(s, draws_idx[f][b]), result.horizons_days, result.tau_days,
-                                   result.brier_times) for f, s in enumerate(folds)], columns)
+            _combine([evaluate(_resampled(s, draws_idx[f][b]), result.horizons_days, result.tau_days,
+                               result.brier_times) for f, s in enumerate(folds)], columns)
             for b in range(bootstrap)
         ], columns=columns)
     has_base = baseline in result.models
@@ -351,6 +405,7 @@ def compare_models(
                     dv.estimate, dv.low, dv.high)
             else:
                 row[f"{col}_vs_{baseline}"] = row[f"{col}_vs_{baseline}_low"] = row[f"{col}_vs_{baseline}_high"] = np.nan
+        row.update(_fold_spread_intervals(result, name, baseline if has_base else None, fold_spread, level))
         for h in result.horizons_days:
             p = np.concatenate([s.prob[h] for s in result.scores[name]])
             sd = float(np.sqrt(np.sum(p * (1 - p))))
@@ -358,7 +413,15 @@ def compare_models(
             row[f"expected_failures_{h}d_pb_high"] = float(p.sum()) + 1.959963984540054 * sd
         rows.append(row)
     out = pd.DataFrame(rows)
-    out.attrs.update({"bootstrap": bootstrap, "level": level, "tau_days": result.tau_days, "baseline": baseline})
+    order = ["model"]
+    for col in all_columns:
+        order += [col, f"{col}_low", f"{col}_high", f"{col}_vs_{baseline}", f"{col}_vs_{baseline}_low",
+                  f"{col}_vs_{baseline}_high"]
+    out = out[order + [c for c in out.columns if c not in order]]
+    method = {c: "bootstrap of held-out units" for c in columns}
+    method.update({c: "normal interval from the spread over folds" for c in fold_spread})
+    out.attrs.update({"bootstrap": bootstrap, "level": level, "tau_days": result.tau_days, "baseline": baseline,
+                      "interval_method": method})
     return out
 
 

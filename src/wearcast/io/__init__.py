@@ -91,7 +91,13 @@ def check_export(config: Config, out_dir: Path) -> dict:
     quarantine_path, life_table_path.
     """
     out_dir = Path(out_dir)
-    result = load_export(config, quarantine_dir=out_dir)
+    return write_check(load_export(config, quarantine_dir=out_dir), out_dir)
+
+
+def write_check(result: ExportResult, out_dir: Path) -> dict:
+    """Write life_table.csv for ``result`` into ``out_dir``; return the check summary
+    (see :func:`check_export`). The quarantine file was written by :func:`load_export`."""
+    out_dir = Path(out_dir)
     table_path = _atomic.write_csv(out_dir / LIFE_TABLE_FILE, _dates_as_text(result.table.frame))
     summary = dict(result.table.summary())
     summary.update(
@@ -116,5 +122,5 @@ def _dates_as_text(frame: pd.DataFrame) -> pd.DataFrame:
     return out
 
 
-__all__ = ["ExportResult", "load_export", "check_export", "QUARANTINE_COLUMNS", "QUARANTINE_FILE",
+__all__ = ["ExportResult", "load_export", "check_export", "write_check", "QUARANTINE_COLUMNS", "QUARANTINE_FILE",
            "LIFE_TABLE_FILE"]
