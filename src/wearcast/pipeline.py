@@ -1,46 +1,134 @@
 """The main job as a sequence of stages, and the demo that runs it on the invented fleet.
 
-A stage is a function ``stage(config, out_dir, results) -> dict``: it reads
-the config, writes its files into ``out_dir`` (through :mod:`wearcast._atomic`)
-and returns a summary with the paths it wrote; ``results`` holds the earlier
-stages' summaries by name. :data:`JOB_STAGES` lists them in order; adding a
-stage is one line there. No stage imports a later one.
+A stage is a function ``stage(config, out_dir, state) -> dict``: it reads the
+config and what earlier stages left in ``state`` (a :class:`JobState`), writes
+its files into ``out_dir`` (through :mod:`wearcast._atomic`) and returns a
+JSON-able summary with the paths it wrote. :data:`JOB_STAGES` lists them in
+order; adding a stage is one line there. No stage imports a later one.
+
+Stages: ``check`` (export → validated life table, quarantine), ``fit``
+(candidates, cross-validated choice, comparison with the Cox baseline,
+bundles), ``rank`` (bootstrap refits, ranked units, fleet forecast) and
+``report`` (report.html with figures).
 """
 
 from __future__ import annotations
 
+import json
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
 
+from wearcast import _atomic
 from wearcast.config import Config, load_config
 
-Stage = Callable[[Config, Path, dict], dict]
+
+@dataclass
+class JobState:
+    """What the stages hand on to each other in one run."""
+
+    export: object | None = None  # wearcast.io.ExportResult
+    fit: object | None = None  # wearcast.fitting.FitOutcome
+    ranked: object | None = None  # wearcast.ranking.RankedList
+    summaries: dict[str, dict] = field(default_factory=dict)
+    jobs: int | None = None  # overrides [ranking] jobs when set
+    scheduler: str | None = None  # Dask scheduler address for refits
 
 
-def _check_stage(config: Config, out_dir: Path, results: dict) -> dict:
-    """Read and validate the export; write quarantine.csv and life_table.csv."""
-    from wearcast.io import check_export
+Stage = Callable[[Config, Path, JobState], dict]
 
-    return check_export(config, out_dir)
+
+def check_stage(config: Config, out_dir: Path, state: JobState) -> dict:
+    """Read and validate the export; write quarantine.csv, life_table.csv, check_summary.json."""
+    from wearcast.io import load_export, write_check
+
+    state.export = load_export(config, quarantine_dir=out_dir)
+    summary = write_check(state.export, out_dir)
+    summary["check_summary_path"] = str(_atomic.write_json(out_dir / "check_summary.json", summary))
+    return summary
+
+
+def fit_stage(config: Config, out_dir: Path, state: JobState) -> dict:
+    """Choose and fit the models; write metrics, comparison and bundles."""
+    from wearcast.fitting import fit_models
+
+    state.fit = fit_models(state.export.table, config, out_dir)
+    return {"chosen": state.fit.chosen, "reason": state.fit.choice.reason,
+            "models": sorted(state.fit.models), **{f"{k}_path": v for k, v in state.fit.files.items()}}
+
+
+def rank_stage(config: Config, out_dir: Path, state: JobState) -> dict:
+    """Bootstrap refits of the chosen model, ranked units and fleet forecast."""
+    from wearcast.ranking import rank_units, write_ranking
+    from wearcast.resample import refits_for_config
+
+    table = state.export.table
+    model = state.fit.main_model
+    section = config.ranking
+    jobs = section.jobs if state.jobs is None else state.jobs
+    refits = None
+    if section.refits > 0:
+        refits = refits_for_config(table, model, _with_jobs(section, jobs), config.model.seed,
+                                   group_by=config.fleet.group_by, checkpoint_dir=out_dir / "refits",
+                                   scheduler=state.scheduler)
+    state.ranked = rank_units(table, model, refits, section.horizons_days, section.top_k, section.stable_share,
+                              config.fleet.group_by)
+    state.ranked.summary["model"] = state.fit.chosen
+    state.ranked.summary["choice_reason"] = state.fit.choice.reason
+    state.ranked.summary["group_by"] = config.fleet.group_by[0] if config.fleet.group_by else None
+    paths = write_ranking(state.ranked, out_dir)
+    return {k + "_path": str(v) for k, v in paths.items()} | {"units_ranked": len(state.ranked.ranked_units)}
+
+
+def report_stage(config: Config, out_dir: Path, state: JobState) -> dict:
+    """report.html and figures from everything the run wrote."""
+    from wearcast.report import build_report, report_inputs_from_run_folder
+
+    overrides = {}
+    if state.export is not None:
+        overrides["life_table"] = state.export.table
+    inputs = report_inputs_from_run_folder(out_dir, **overrides)
+    paths = build_report(inputs, out_dir)
+    return {"report_path": str(paths["report"]), "figures": len(paths) - 1}
+
+
+def _with_jobs(section, jobs: int):
+    import dataclasses
+
+    return dataclasses.replace(section, jobs=jobs)
 
 
 #: (name, stage) in the order they run.
 JOB_STAGES: tuple[tuple[str, Stage], ...] = (
-    ("check", _check_stage),
+    ("check", check_stage),
+    ("fit", fit_stage),
+    ("rank", rank_stage),
+    ("report", report_stage),
 )
 
 
-def run_job(config: Config, out_dir: str | Path, stages: tuple[tuple[str, Stage], ...] = JOB_STAGES) -> dict:
+def run_job(config: Config, out_dir: str | Path, stages: tuple[tuple[str, Stage], ...] = JOB_STAGES,
+            *, state: JobState | None = None) -> dict:
     """Run every stage on the export named in ``config``; outputs go to ``out_dir``.
 
-    Returns ``{stage name: stage summary}`` in run order. A stage's
-    :class:`wearcast.exceptions.WearcastError` stops the run and propagates.
+    Returns ``{stage name: stage summary}`` in run order and writes them to
+    ``run_summary.json``. A stage's :class:`wearcast.exceptions.WearcastError`
+    stops the run and propagates; files already written stay complete
+    (each is written atomically).
     """
     out_dir = Path(out_dir)
-    results: dict[str, dict] = {}
+    state = state or JobState()
     for name, stage in stages:
-        results[name] = stage(config, out_dir, results)
-    return results
+        state.summaries[name] = stage(config, out_dir, state)
+    _atomic.write_text(out_dir / "run_summary.json",
+                       json.dumps(state.summaries, indent=2, sort_keys=True, default=str) + "\n")
+    return state.summaries
+
+
+def stages_named(names) -> tuple[tuple[str, Stage], ...]:
+    """The stages of :data:`JOB_STAGES` with these names, in job order."""
+    wanted = set(names)
+    return tuple((n, s) for n, s in JOB_STAGES if n in wanted)
 
 
 def run_demo(out_dir: str | Path, n_units: int = 2000, seed: int = 7) -> dict:

@@ -296,6 +296,15 @@ def config_text(tables: FleetTables, seed: int) -> str:
         'group_by = ["site"]\n\n'
         "[model]\n"
         f"seed = {int(seed)}\n\n"
+        "# Lighter than the defaults so the demo finishes in a few minutes on a laptop.\n"
+        "[model.forest]\n"
+        "n_trees = 100\n\n"
+        "[validation]\n"
+        "folds = 3\n"
+        "bootstrap = 100\n\n"
+        "[ranking]\n"
+        "refits = 40\n"
+        "top_k = 50\n\n"
         "[output]\n"
         'folder = "wearcast-output"\n'
     )

@@ -1,0 +1,205 @@
+"""The fit stage: candidates, cross-validated choice, comparison, final fits, bundles.
+
+``fit_models(table, config, out_dir)``:
+
+1. builds the candidates (:mod:`wearcast.selection`; fewer for small fleets,
+   or the model pinned in ``[model] choose``), always with the Cox baseline;
+2. scores them with unit-grouped K-fold cross-validation
+   (:func:`wearcast.validation.cross_validate`), boosted trees choosing their
+   number of trees inside each fold;
+3. chooses one with the calibration guard and the one-standard-error rule;
+4. compares every candidate with the Cox baseline (bootstrap intervals,
+   paired differences) and writes ``metrics.json``, ``comparison.csv``,
+   ``candidates.csv`` and ``calibration.csv``;
+5. fits the chosen model and the models listed in ``[model] fit`` on all the
+   data and saves each as a bundle under ``models/<candidate>/``; writes the
+   boosted cross-validation curve, the forest's out-of-bag curve and the
+   drivers' overall importance when those models exist.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from wearcast import _atomic
+from wearcast.config import Config
+from wearcast.exceptions import ConfigError
+from wearcast.lifetable import LifeTable
+from wearcast.metrics import horizon_calibration
+from wearcast.models.base import SurvivalModel
+from wearcast.selection import CANDIDATE_ORDER, Choice, as_dict, candidate_names, choose, pinned
+from wearcast.validation import compare_models, cross_validate, format_table, write_comparison
+
+MODELS_DIR = "models"
+
+
+def config_model_names(config: Config) -> list[str]:
+    """Map ``[model] fit`` entries (boosted, forest, cox) to candidate names."""
+    out = []
+    for name in config.model.fit:
+        out.append(_candidate_for(name, config))
+    return out
+
+
+def _candidate_for(name: str, config: Config) -> str:
+    if name in CANDIDATE_ORDER:
+        return name
+    if name == "boosted":
+        return f"boosted_d{config.model.boosted.tree_depth}"
+    if name == "forest":
+        return "forest_bagging" if config.model.forest.mode == "bagging" else "forest_sqrt"
+    if name == "cox":
+        return "cox"
+    raise ConfigError(
+        f"{config.source}: model {name!r} is not known; use boosted, forest, cox or one of "
+        f"{', '.join(CANDIDATE_ORDER)}."
+    )
+
+
+def make_model(name: str, config: Config, seed: int) -> SurvivalModel:
+    """An unfitted model for a candidate name, with the config's settings."""
+    if name == "cox":
+        from wearcast.models.cox import CoxBaseline
+
+        return CoxBaseline(seed=seed)
+    if name.startswith("boosted_d"):
+        from wearcast.models.boosted import BoostedSurvivalTrees
+
+        depth = int(name.removeprefix("boosted_d"))
+        section = dataclasses.replace(config.model.boosted, tree_depth=depth, max_leaves=None)
+        return BoostedSurvivalTrees.from_config(section, seed)
+    if name in ("forest_bagging", "forest_sqrt"):
+        from wearcast.models.forest import SurvivalForest
+
+        mode = "bagging" if name == "forest_bagging" else "random_forest"
+        section = dataclasses.replace(config.model.forest, mode=mode)
+        return SurvivalForest.from_config(section, seed)
+    return make_model(_candidate_for(name, config), config, seed)
+
+
+@dataclass
+class FitOutcome:
+    """What the fit stage produced. ``models``: candidate name -> fitted model."""
+
+    chosen: str
+    choice: Choice
+    models: dict[str, SurvivalModel]
+    comparison: pd.DataFrame
+    files: dict[str, str] = field(default_factory=dict)
+
+    @property
+    def main_model(self) -> SurvivalModel:
+        return self.models[self.chosen]
+
+
+def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | None = None) -> FitOutcome:
+    """Run the fit stage on ``table``; write its files into ``out_dir``."""
+    out_dir = Path(out_dir)
+    seed = config.model.seed if seed is None else seed
+    rng = np.random.default_rng(seed)
+    cv_seed, compare_seed, fit_seed = (int(s) for s in rng.integers(0, 2**31 - 1, size=3))
+
+    pin = None if config.model.choose == "auto" else _candidate_for(config.model.choose, config)
+    if pin is None:
+        names, note = candidate_names(table.n_failures, len(table.covariates))
+        names = list(names)
+    else:
+        names, note = ["cox", pin], None
+    names = list(dict.fromkeys(["cox", *names]))
+    candidates = {name: make_model(name, config, seed) for name in names}
+
+    horizons = sorted({int(h) for h in config.validation.horizons_days})
+    cv = cross_validate(candidates, table, k=config.validation.folds, seed=cv_seed, horizons_days=horizons)
+    summary = cv.summary.set_index("model")
+    main_h = max(horizons)
+    choice_input = pd.DataFrame({
+        "c_mean": summary["c_truncation"],
+        "c_se": summary["c_truncation_se"],
+        "expected_failures": summary[f"expected_failures_{main_h}d"],
+        "observed_failures": summary[f"observed_failures_{main_h}d"],
+    })
+    if pin is None:
+        choice = choose(choice_input, calibration_share=config.validation.calibration_share, note=note)
+    else:
+        choice = pinned(pin, choice_input)
+
+    comparison = compare_models(cv, bootstrap=config.validation.bootstrap, seed=compare_seed,
+                                resampled_columns=("c_harrell", "c_truncation"))
+    files: dict[str, str] = {}
+    for path in write_comparison(cv, out_dir, comparison):
+        files[path.stem] = str(path)
+    metrics = json.loads(Path(files["metrics"]).read_text(encoding="utf-8"))
+    metrics["choice"] = as_dict(choice)
+    metrics["calibration"] = _calibration(cv, [choice.name, "cox"], main_h).to_dict(orient="records")
+    _atomic.write_json(files["metrics"], metrics)
+    files["candidates"] = str(_atomic.write_csv(out_dir / "candidates.csv",
+                                                choice.candidates.reset_index(names="candidate")))
+    files["calibration"] = str(_atomic.write_csv(out_dir / "calibration.csv",
+                                                 pd.DataFrame(metrics["calibration"])))
+
+    to_fit = list(dict.fromkeys([choice.name, *config_model_names(config)]))
+    fit_seeds = np.random.default_rng(fit_seed).integers(0, 2**31 - 1, size=len(to_fit))
+    fitted: dict[str, SurvivalModel] = {}
+    golden = table.in_service() if table.in_service().n_rows else table
+    for name, s in zip(to_fit, fit_seeds):
+        model = make_model(name, config, int(s)).fit(table)
+        fitted[name] = model
+        _save_bundle(model, out_dir / MODELS_DIR / name, golden)
+    files.update(_model_side_files(fitted, choice.name, golden, out_dir))
+    return FitOutcome(choice.name, choice, fitted, comparison, files)
+
+
+def _save_bundle(model, folder: Path, golden: LifeTable) -> None:
+    from wearcast.models.bundle import write_bundle
+
+    write_bundle(model, folder, golden.X, golden.exit)
+
+
+def _calibration(cv, names, horizon: int) -> pd.DataFrame:
+    """Held-out calibration by risk decile at ``horizon`` for the named models."""
+    frames = []
+    for name in dict.fromkeys(names):
+        if name not in cv.scores:
+            continue
+        folds = cv.scores[name]
+        cal = horizon_calibration(
+            np.concatenate([s.entry for s in folds]), np.concatenate([s.exit for s in folds]),
+            np.concatenate([s.event for s in folds]), np.concatenate([s.prob[horizon] for s in folds]),
+            horizon, np.concatenate([s.entry for s in folds]),
+        )
+        frames.append(cal.groups.assign(model=name, horizon_days=horizon))
+    return pd.concat(frames, ignore_index=True) if frames else pd.DataFrame()
+
+
+def _model_side_files(fitted: dict, chosen: str, golden: LifeTable, out_dir: Path) -> dict[str, str]:
+    files = {}
+    for name, model in fitted.items():
+        curve = getattr(model, "cv_curve_", None)
+        if name.startswith("boosted") and curve is not None and "cv_curve" not in files:
+            frame = pd.DataFrame({"trees": np.arange(1, len(curve) + 1), "heldout_loss": curve})
+            files["cv_curve"] = str(_atomic.write_csv(out_dir / "cv_curve.csv", frame))
+        oob = getattr(model, "oob_curve_", None)
+        if name.startswith("forest") and oob is not None and "oob_curve" not in files:
+            files["oob_curve"] = str(_atomic.write_csv(out_dir / "oob_curve.csv", oob))
+    try:
+        contrib = fitted[chosen].contributions(golden.X)
+    except NotImplementedError:
+        return files
+    importance = contrib.abs().mean().sort_values(ascending=False)
+    frame = pd.DataFrame({"covariate": importance.index, "importance": importance.to_numpy()})
+    files["importance"] = str(_atomic.write_csv(out_dir / "importance.csv", frame))
+    return files
+
+
+def describe_fit(outcome: FitOutcome) -> list[str]:
+    """Lines for the terminal: the candidates table and the choice."""
+    cols = [c for c in ("candidate", "c_mean", "c_se", "calibration_ratio", "eligible", "within_1se")
+            if c in outcome.choice.candidates.reset_index(names="candidate").columns]
+    table = outcome.choice.candidates.reset_index(names="candidate").loc[:, cols]
+    return [format_table(table).rstrip(), f"choice: {outcome.choice.reason}"]
