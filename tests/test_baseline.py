@@ -130,3 +130,25 @@ def test_strata_and_round_trip(macs):
         np.testing.assert_array_equal(again.cumhaz[label], base.cumhaz[label])
     with pytest.raises(ValueError, match="format"):
         BaselineHazard.from_dict({"format": "something else"})
+
+
+def test_linear_interpolation_agrees_at_failure_ages_and_fills_gaps():
+    # Checked against lifelines NelsonAalenFitter with entry on MACS at the failure ages;
+    # between them the linear version must be strictly between neighbouring steps, so a
+    # short window with no past failure age still gets a positive probability.
+    from lifelines import NelsonAalenFitter
+    from lifelines.datasets import load_multicenter_aids_cohort_study
+
+    d = load_multicenter_aids_cohort_study()
+    step = BaselineHazard.estimate(d["W"], d["T"], d["D"].astype(bool))
+    lin = BaselineHazard.estimate(d["W"], d["T"], d["D"].astype(bool), interpolation="linear")
+    fail_ages = np.unique(d["T"][d["D"] == 1])
+    naf = NelsonAalenFitter(nelson_aalen_smoothing=False).fit(d["T"], d["D"], entry=d["W"])
+    np.testing.assert_allclose(lin.at(fail_ages), naf.cumulative_hazard_.loc[fail_ages].iloc[:, 0], rtol=1e-12)
+    mids = (fail_ages[1:] + fail_ages[:-1]) / 2
+    assert np.all(lin.at(mids) > step.at(mids)) and np.all(lin.at(mids) < step.at(fail_ages[1:]))
+    tiny = (fail_ages[1:] - fail_ages[:-1]) / 4
+    assert np.all(lin.fail_probability(0.0, mids, 0.0 + tiny.min()) > 0)
+    assert np.all(step.fail_probability(0.0, mids[:3], 1e-9) == 0)
+    assert lin.at(np.array([fail_ages[-1] + 10]))[0] == lin.at(fail_ages[-1:])[0]
+    assert BaselineHazard.from_dict(lin.to_dict()).interpolation == "linear"

@@ -62,3 +62,18 @@ def step_at(ages: np.ndarray, cumhaz: np.ndarray, query: np.ndarray) -> np.ndarr
     idx = np.searchsorted(np.asarray(ages, float), np.asarray(query, float), side="right")
     padded = np.concatenate([[0.0], np.asarray(cumhaz, float)])
     return padded[idx]
+
+
+def linear_at(ages: np.ndarray, cumhaz: np.ndarray, query: np.ndarray) -> np.ndarray:
+    """Cumulative hazard joined linearly between failure ages: 0 at age 0, equal
+    to the step function at every failure age, flat after the last one.
+
+    The step estimate puts all hazard on the observed failure ages, so the
+    probability of failing within a short window that holds no past failure age
+    would be exactly zero. Spreading each jump evenly over the gap before it is
+    the usual remedy (a piecewise-constant hazard between failure ages).
+    """
+    knots = np.concatenate([[0.0], np.asarray(ages, float)])
+    values = np.concatenate([[0.0], np.asarray(cumhaz, float)])
+    q = np.asarray(query, float)
+    return np.where(q <= 0, 0.0, np.interp(q, knots, values))

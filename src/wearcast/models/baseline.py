@@ -21,7 +21,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from wearcast.models._cox_kernels import baseline_hazard_increments, prepare_risk_sets
-from wearcast.models._hazard import breslow_cumulative_hazard, step_at
+from wearcast.models._hazard import breslow_cumulative_hazard, linear_at, step_at
 from wearcast.models.base import conditional_failure_probability
 
 _FORMAT = "wearcast.baseline_hazard"
@@ -45,6 +45,9 @@ class BaselineHazard:
     ages: dict[str, np.ndarray] = field(default_factory=dict)
     cumhaz: dict[str, np.ndarray] = field(default_factory=dict)
     ties: str = "breslow"
+    #: "step" (right-continuous, jumps at failure ages) or "linear" (joined
+    #: linearly between failure ages; equal at them; see _hazard.linear_at).
+    interpolation: str = "step"
 
     # -- estimation ---------------------------------------------------------
     @classmethod
@@ -58,11 +61,15 @@ class BaselineHazard:
         weights: np.ndarray | None = None,
         strata: np.ndarray | None = None,
         ties: str = "breslow",
+        interpolation: str = "step",
     ) -> "BaselineHazard":
         """Estimate from rows: ``entry``/``exit`` ages (days), ``event`` (bool),
         ``eta`` log relative risk (default 0), case ``weights``, ``strata``
         labels; all shape (n,). Returns a new object."""
-        return cls(ties=ties).fit(entry, exit, event, eta, weights=weights, strata=strata)
+        if interpolation not in ("step", "linear"):
+            raise ValueError(f"interpolation must be 'step' or 'linear'; got {interpolation!r}")
+        return cls(ties=ties, interpolation=interpolation).fit(entry, exit, event, eta, weights=weights,
+                                                               strata=strata)
 
     def fit(self, entry, exit, event, eta=None, *, weights=None, strata=None, ties=None) -> "BaselineHazard":
         """Estimate in place (see :meth:`estimate`); returns self."""
@@ -134,15 +141,18 @@ class BaselineHazard:
                     f"this baseline hazard has {len(self.ages)} strata ({', '.join(self.strata)}); pass strata="
                 )
             (key,) = self.ages
-            return step_at(self.ages[key], self.cumhaz[key], ages)
+            return self._evaluate(self.ages[key], self.cumhaz[key], ages)
         labels = _labels(strata, np.broadcast_shapes(np.shape(strata), ages.shape))
         ages = np.broadcast_to(ages, labels.shape)
         out = np.zeros(labels.shape)
         for label in np.unique(labels):
             mask = labels == label
             key = self._key(label)
-            out[mask] = step_at(self.ages[key], self.cumhaz[key], ages[mask])
+            out[mask] = self._evaluate(self.ages[key], self.cumhaz[key], ages[mask])
         return out
+
+    def _evaluate(self, ages, cumhaz, query):
+        return linear_at(ages, cumhaz, query) if self.interpolation == "linear" else step_at(ages, cumhaz, query)
 
     def cumulative_hazard_at(self, eta: np.ndarray, ages: np.ndarray, strata=None) -> np.ndarray:
         """``H0(age) * exp(eta)``; ``eta`` and ``ages`` broadcast (e.g. (n, 1) with (m,) gives (n, m))."""
@@ -168,6 +178,7 @@ class BaselineHazard:
             "format": _FORMAT,
             "version": _VERSION,
             "ties": self.ties,
+            "interpolation": self.interpolation,
             "strata": [
                 {
                     "label": key,
@@ -185,7 +196,7 @@ class BaselineHazard:
             raise ValueError(f"not a saved baseline hazard (expected format {_FORMAT!r})")
         if data.get("version") != _VERSION:
             raise ValueError(f"baseline hazard version {data.get('version')!r} is not supported (expected {_VERSION})")
-        out = cls(ties=str(data.get("ties", "breslow")))
+        out = cls(ties=str(data.get("ties", "breslow")), interpolation=str(data.get("interpolation", "step")))
         for item in data["strata"]:
             ages = np.asarray(item["ages_days"], float)
             cumhaz = np.asarray(item["cumulative_hazard"], float)

@@ -159,7 +159,8 @@ class CoxBaseline(SurvivalModel):
             self.coefficients[varying] = fitted.params_.to_numpy(float)
             self.log_likelihood = float(fitted.log_likelihood_)
         eta = (Z - self.means) @ self.coefficients
-        self.baseline = BaselineHazard.estimate(entry, exit, event, eta, ties=self.baseline_ties)
+        self.baseline = BaselineHazard.estimate(entry, exit, event, eta, ties=self.baseline_ties,
+                                               interpolation="linear")
         return self
 
     def _fit_lifelines(self, Z: np.ndarray, entry, exit, event):
