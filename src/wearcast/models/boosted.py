@@ -379,7 +379,7 @@ def _finite(value: float) -> float | None:
 def _fit_baseline(entry, exit_, event, eta, ties: str) -> BaselineHazard:
     """Breslow baseline with delayed entry from the final scores (Efron-corrected
     for tied failures when the model was fitted with Efron ties)."""
-    return BaselineHazard.estimate(entry, exit_, event, eta, ties=ties)
+    return BaselineHazard.estimate(entry, exit_, event, eta, ties=ties, interpolation="linear")
 
 
 def _load_baseline(data: dict, path: Path) -> BaselineHazard:
