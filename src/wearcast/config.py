@@ -135,6 +135,7 @@ class MonthlySection:
     registry: str = "registry"
     c_tolerance: float = 0.01
     calibration_bound: float = 0.25  # |expected / observed - 1| allowed for promotion
+    holdout_days: int = 365  # the promotion gate scores both models on failures in the last this many days
 
 
 @dataclass(frozen=True)

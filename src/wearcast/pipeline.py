@@ -33,6 +33,8 @@ class JobState:
     summaries: dict[str, dict] = field(default_factory=dict)
     jobs: int | None = None  # overrides [ranking] jobs when set
     scheduler: str | None = None  # Dask scheduler address for refits
+    rank_with: str | None = None  # rank with this fitted model (name) instead of the chosen one
+    rank_model: object | None = None  # or with this model object (the monthly run's champion)
 
 
 Stage = Callable[[Config, Path, JobState], dict]
@@ -63,7 +65,7 @@ def rank_stage(config: Config, out_dir: Path, state: JobState) -> dict:
     from wearcast.resample import refits_for_config
 
     table = state.export.table
-    model = state.fit.main_model
+    name, model = _ranking_model(config, state)
     section = config.ranking
     jobs = section.jobs if state.jobs is None else state.jobs
     refits = None
@@ -73,11 +75,29 @@ def rank_stage(config: Config, out_dir: Path, state: JobState) -> dict:
                                    scheduler=state.scheduler)
     state.ranked = rank_units(table, model, refits, section.horizons_days, section.top_k, section.stable_share,
                               config.fleet.group_by)
-    state.ranked.summary["model"] = state.fit.chosen
-    state.ranked.summary["choice_reason"] = state.fit.choice.reason
+    state.ranked.summary["model"] = name
+    state.ranked.summary["choice_reason"] = state.fit.choice.reason if state.fit is not None else None
     state.ranked.summary["group_by"] = config.fleet.group_by[0] if config.fleet.group_by else None
     paths = write_ranking(state.ranked, out_dir)
     return {k + "_path": str(v) for k, v in paths.items()} | {"units_ranked": len(state.ranked.ranked_units)}
+
+
+def _ranking_model(config: Config, state: JobState):
+    """(name, fitted model) the list is ranked with."""
+    from wearcast.exceptions import ConfigError
+    from wearcast.fitting import _candidate_for
+
+    if state.rank_model is not None:
+        return getattr(state.rank_model, "name", "model"), state.rank_model
+    if state.rank_with is None:
+        return state.fit.chosen, state.fit.main_model
+    wanted = _candidate_for(state.rank_with, config)
+    if wanted not in state.fit.models:
+        raise ConfigError(
+            f"model {state.rank_with!r} was not fitted in this run (fitted: {', '.join(sorted(state.fit.models))}); "
+            "add it to [model] fit in the config."
+        )
+    return wanted, state.fit.models[wanted]
 
 
 def report_stage(config: Config, out_dir: Path, state: JobState) -> dict:
