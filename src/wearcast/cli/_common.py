@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import functools
+from pathlib import Path
 import sys
 
 import click
@@ -33,3 +34,54 @@ def library_call(func):
 def command_help(summary: str, example: str) -> str:
     """Help text with an example and the safety caution (click keeps \\b blocks)."""
     return f"{summary}\n\n\b\nExample:\n  {example}\n\n{EPILOG_CAUTION}"
+
+
+_UNITS_DAYS = {"d": 1, "w": 7, "m": 30.4375, "y": 365.25}
+
+
+def parse_days(text: str) -> int:
+    """'90d', '12w', '3m', '1y' or a bare number of days -> whole days."""
+    text = str(text).strip().lower()
+    unit = text[-1] if text and text[-1] in _UNITS_DAYS else "d"
+    number = text[:-1] if text and text[-1] in _UNITS_DAYS else text
+    try:
+        value = float(number)
+    except ValueError:
+        raise click.BadParameter(f"{text!r} is not a duration; write e.g. 90d, 12w, 3m or 1y.") from None
+    if value <= 0:
+        raise click.BadParameter(f"{text!r} must be positive.")
+    return int(round(value * _UNITS_DAYS[unit]))
+
+
+def parse_months(text: str) -> int:
+    """'3m' or '3' -> 3 months (a step between backtest origins)."""
+    text = str(text).strip().lower().removesuffix("m")
+    if not text.isdigit() or int(text) < 1:
+        raise click.BadParameter(f"{text!r} is not a number of months; write e.g. 3m.")
+    return int(text)
+
+
+def config_argument(func):
+    return click.argument("config", type=click.Path(dir_okay=False, path_type=Path))(func)
+
+
+def out_option(func):
+    return click.option(
+        "--out", "out_dir", type=click.Path(file_okay=False, path_type=Path), default=None,
+        help="Output folder (default: the config's output.folder, relative to the config file).",
+    )(func)
+
+
+def workers_options(func):
+    func = click.option("--scheduler", default=None, metavar="ADDRESS",
+                        help="Run bootstrap refits on a Dask cluster (e.g. tls://host:8786); needs wearcast[dask].")(func)
+    return click.option("--jobs", type=click.IntRange(min=0), default=None,
+                        help="Parallel workers for refits (0 = all cores; default: [ranking] jobs).")(func)
+
+
+def load(config_path: Path):
+    """The config and its default output folder."""
+    from wearcast.config import load_config
+
+    config = load_config(config_path)
+    return config, config.path(config.output.folder)

@@ -22,9 +22,9 @@ def main() -> None:
 
 def _register() -> None:
     # Imported here so `wearcast --help` stays fast and import errors name the command.
-    from wearcast.cli import check, demo
+    from wearcast.cli import backtest, check, demo, fit, monthly, rank, report
 
-    for module in (check, demo):
+    for module in (check, fit, rank, backtest, report, monthly, demo):
         main.add_command(module.command)
 
 

@@ -1,0 +1,58 @@
+"""``wearcast rank CONFIG``: the whole job — check, fit, ranked list with intervals, report."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import click
+
+from wearcast.cli._common import command_help, config_argument, library_call, load, out_option, workers_options
+
+
+def describe_ranking(ranked, top: int = 10) -> list[str]:
+    """The first units of the list and the fleet forecast, as terminal lines."""
+    from wearcast.validation import format_table
+
+    units = ranked.ranked_units
+    p_cols = [c for c in units.columns if c.startswith("p_fail_") and c.count("_") == 2]
+    main = max(p_cols, key=lambda c: float(c[7:-1]))
+    cols = [c for c in ["rank", "unit_id", "age_years", main, f"{main}_low", f"{main}_high", "rank_low",
+                        "rank_high", "driver_1"] if c in units.columns]
+    lines = [f"highest risk units (of {len(units)} in service):", format_table(units.head(top)[cols]).rstrip()]
+    fleet = ranked.fleet_forecast
+    fleet = fleet[fleet["group"] == "all"] if "group" in fleet.columns else fleet
+    lines.append("expected failures in the fleet:")
+    for _, row in fleet.iterrows():
+        lines.append(f"  within {int(row['horizon_days'])} days: {row['expected_failures']:.1f} "
+                     f"(90 % interval {row['failures_low']:.0f}-{row['failures_high']:.0f})")
+    return lines
+
+
+@click.command(
+    "rank",
+    help=command_help(
+        "Run the whole job: check the export, choose and fit the model, rank every unit in "
+        "service by its probability of failure within each horizon with stability intervals "
+        "from bootstrap refits, forecast fleet failures and write report.html.",
+        "wearcast rank fleet.toml --out runs/2026-11 --jobs 2",
+    ),
+)
+@config_argument
+@out_option
+@click.option("--model", "model_name", default=None,
+              help="Rank with this fitted model (boosted, forest, cox) instead of the chosen one.")
+@workers_options
+@library_call
+def command(config: Path, out_dir: Path | None, model_name: str | None, jobs: int | None,
+            scheduler: str | None) -> None:
+    from wearcast.pipeline import JobState, run_job
+
+    cfg, default_out = load(config)
+    out_dir = out_dir or default_out
+    state = JobState(jobs=jobs, scheduler=scheduler, rank_with=model_name)
+    summaries = run_job(cfg, out_dir, state=state)
+    for line in describe_ranking(state.ranked):
+        click.echo(line)
+    click.echo(f"model: {state.ranked.summary.get('model')} — {state.fit.choice.reason}")
+    click.echo(f"report: {summaries['report']['report_path']}")
+    click.echo(f"outputs are in {out_dir}")
