@@ -134,6 +134,12 @@ def _run_into(config: Config, registry: ModelRegistry, out: Path, run_id: str, i
 
     used = challenger if promote else champion
     state.rank_model = used
+    if not promote and tuple(model_covariates(champion)) != tuple(table.covariates):
+        # The champion was trained on other covariates than this month's config names: rank it on its own.
+        from wearcast.io import load_export
+
+        state.export = load_export(config_for_model(config, champion))
+        table = state.export.table
     for name, stage in (("rank", rank_stage),):
         start = time.perf_counter()
         state.summaries[name] = stage(config, out, state)
@@ -187,10 +193,12 @@ def promotion_gate(config: Config, champion, challenger) -> dict:
     if end is None:
         raise ValueError("the promotion gate needs fleet.as_of")
     origin = end - dt.timedelta(days=h)
-    factories = {"champion": champion.unfitted_copy, "challenger": challenger.unfitted_copy}
-    result = run_backtest(config, factories, origin, h, origins=1, top_k=config.ranking.top_k,
-                          seed=config.model.seed)
-    rows = result.per_origin.set_index("model")
+    # Each model is refitted with its own covariates on the same as-of export, scored on the same units.
+    rows = pd.concat([
+        run_backtest(config_for_model(config, model), {role: model.unfitted_copy}, origin, h, origins=1,
+                     top_k=config.ranking.top_k, seed=config.model.seed).per_origin
+        for role, model in (("champion", champion), ("challenger", challenger))
+    ]).set_index("model")
     c_col, e_col, o_col = f"c_harrell_{h}d", f"expected_failures_{h}d", f"observed_failures_{h}d"
     c_champ, c_chall = float(rows.loc["champion", c_col]), float(rows.loc["challenger", c_col])
     expected, observed = float(rows.loc["challenger", e_col]), float(rows.loc["challenger", o_col])
@@ -211,6 +219,26 @@ def promotion_gate(config: Config, champion, challenger) -> dict:
     return {"promote": bool(c_ok and cal_ok), "reasons": reasons, "holdout_start": origin.isoformat(),
             "holdout_days": h, "c_champion": c_champ, "c_challenger": c_chall,
             "expected_challenger": expected, "observed": observed}
+
+
+def model_covariates(model) -> list[str]:
+    """The covariates a fitted model was trained on."""
+    found = getattr(model, "covariates_", None)
+    if found is None:
+        found = getattr(model, "covariates", ())
+    return list(found)
+
+
+def config_for_model(config: Config, model) -> Config:
+    """``config`` with the fleet's covariates set to those ``model`` was trained on."""
+    covariates = model_covariates(model)
+    categorical = [c for c in config.fleet.categorical if c in covariates]
+    for c in covariates:
+        levels = getattr(model, "category_levels_", None) or getattr(model, "levels", None) or {}
+        if c in levels and c not in categorical and c not in config.fleet.covariates:
+            categorical.append(c)
+    fleet = dataclasses.replace(config.fleet, covariates=covariates, categorical=categorical)
+    return dataclasses.replace(config, fleet=fleet)
 
 
 def month_changes(previous_dir: Path, ranked: pd.DataFrame, top_k: int) -> dict | None:

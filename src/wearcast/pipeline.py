@@ -46,8 +46,20 @@ def check_stage(config: Config, out_dir: Path, state: JobState) -> dict:
 
     state.export = load_export(config, quarantine_dir=out_dir)
     summary = write_check(state.export, out_dir)
-    summary["check_summary_path"] = str(_atomic.write_json(out_dir / "check_summary.json", summary))
+    # Paths inside the run folder are written relative to it, so a folder can be moved
+    # (the monthly run renames its staging folder) and reruns elsewhere match byte for byte.
+    on_disk = {k: (_relative(v, out_dir) if k.endswith("_path") else v) for k, v in summary.items()}
+    summary["check_summary_path"] = str(_atomic.write_json(out_dir / "check_summary.json", on_disk))
     return summary
+
+
+def _relative(path, folder: Path):
+    if not path or path == "None":
+        return None
+    try:
+        return Path(path).resolve().relative_to(Path(folder).resolve()).as_posix()
+    except ValueError:
+        return str(path)
 
 
 def fit_stage(config: Config, out_dir: Path, state: JobState) -> dict:
