@@ -223,7 +223,7 @@ class BoostedSurvivalTrees(SurvivalModel):
         self.n_trees_ = n_trees
         self.covariates_ = covariates
         self.category_levels_ = levels
-        eta = booster.predict(M, raw_score=True, num_threads=int(s.threads))
+        eta = _training_scores(booster, len(M))
         self.baseline_ = _fit_baseline(entry, exit_, event, eta, s.ties)
         return self
 
@@ -368,6 +368,22 @@ class BoostedSurvivalTrees(SurvivalModel):
         model.cv_fold_curves_ = None if fold_curves is None else np.asarray(fold_curves, dtype=float)
         model.baseline_ = _load_baseline(baseline, folder / BASELINE_FILE)
         return model
+
+
+def _training_scores(booster: lgb.Booster, n: int) -> np.ndarray:
+    """Final raw scores of the training rows, shape (n,), read from the scores
+    LightGBM keeps while boosting (public ``eval_train`` hands them to a custom
+    metric), which saves predicting the training set again."""
+    captured = []
+
+    def grab(raw, _data):
+        captured.append(np.array(raw, dtype=float))
+        return "scores", 0.0, False
+
+    booster.eval_train(feval=grab)
+    if not captured or captured[0].shape != (n,):  # pragma: no cover - LightGBM API change
+        raise ModelError("could not read the training scores back from LightGBM")
+    return captured[0]
 
 
 def _finite(value: float) -> float | None:
