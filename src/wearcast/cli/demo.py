@@ -22,6 +22,8 @@ def describe(result: dict) -> list[str]:
     ]
     for name, summary in result["stages"].items():
         lines.append(f"stage {name}:")
+        if summary.get("reason"):
+            lines.append(f"  {summary['reason']}")
         for key in ("units", "lives", "failures", "suspensions", "delayed_entries", "in_service_units",
                     "rows_quarantined"):
             if key in summary:
@@ -29,7 +31,24 @@ def describe(result: dict) -> list[str]:
         for key, value in summary.items():
             if key.endswith("_path") and value:
                 lines.append(f"  {key[:-5].replace('_', ' '):<17} {value}")
+    lines += _forecast_lines(result["stages"].get("rank", {}))
     lines.append(f"outputs are in {result['out_dir']}")
+    return lines
+
+
+def _forecast_lines(rank: dict) -> list[str]:
+    """The fleet forecast in one line per horizon, read back from the file the run wrote."""
+    path = rank.get("fleet_forecast_path")
+    if not path:
+        return []
+    import pandas as pd
+
+    forecast = pd.read_csv(path, keep_default_na=False)
+    fleet = forecast[forecast["group"] == "all"]
+    lines = ["expected failures in the invented fleet:"]
+    for _, row in fleet.iterrows():
+        lines.append(f"  within {int(row['horizon_days'])} days: {float(row['expected_failures']):.1f} "
+                     f"(90 % interval {row['failures_low']}-{row['failures_high']})")
     return lines
 
 
