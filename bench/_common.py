@@ -4,7 +4,12 @@ Peak memory is the largest rise of the process's resident set size (RSS, as
 psutil reports it) above its level just before the call, sampled every
 ``interval`` seconds by a background thread. It counts memory that native
 libraries (LightGBM, XGBoost, BLAS) allocate, which ``tracemalloc`` cannot
-see; a spike shorter than the interval can be missed.
+see; a spike shorter than the interval can be missed. So that memory freed by
+an earlier fit is not silently reused (which hides a later fit's peak),
+:func:`reexec_with_returning_allocator` restarts the script with glibc's
+``MALLOC_MMAP_THRESHOLD_`` fixed at 64 KiB (large arrays get their own pages
+and go back to the system when freed), and :func:`measure` trims the heap
+before each call.
 
 Results tables live in ``bench/README.md``, one section per benchmark between
 ``<!-- bench:NAME:start -->`` and ``<!-- bench:NAME:end -->`` markers, so
@@ -13,8 +18,11 @@ scripts rewrite their own section and leave the others alone.
 
 from __future__ import annotations
 
+import ctypes
 import gc
+import os
 import re
+import sys
 import threading
 import time
 from dataclasses import dataclass
@@ -37,9 +45,25 @@ class Measured:
     peak_mib: float
 
 
+def reexec_with_returning_allocator() -> None:
+    """Restart this script once with ``MALLOC_MMAP_THRESHOLD_=65536`` (glibc reads it at start)."""
+    if os.environ.get("MALLOC_MMAP_THRESHOLD_") is None and sys.platform.startswith("linux"):
+        env = dict(os.environ, MALLOC_MMAP_THRESHOLD_="65536")
+        os.execve(sys.executable, [sys.executable, *sys.argv], env)
+
+
+def release_memory() -> None:
+    """Collect garbage and hand free heap pages back to the system (glibc)."""
+    gc.collect()
+    try:
+        ctypes.CDLL("libc.so.6").malloc_trim(0)
+    except (OSError, AttributeError):  # pragma: no cover - not glibc
+        pass
+
+
 def measure(fn: Callable, *args, interval: float = 0.005, **kwargs) -> Measured:
     """Run ``fn(*args, **kwargs)``; time it and sample the peak RSS rise meanwhile."""
-    gc.collect()
+    release_memory()
     process = psutil.Process()
     start_rss = process.memory_info().rss
     peak = [start_rss]

@@ -45,7 +45,7 @@ import numpy as np
 import pandas as pd
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from _common import markdown_table, measure, write_section  # noqa: E402
+from _common import markdown_table, measure, reexec_with_returning_allocator, write_section  # noqa: E402
 
 from wearcast.config import load_config  # noqa: E402
 from wearcast.io import load_export  # noqa: E402
@@ -360,6 +360,7 @@ def report(rows, extra, a) -> str:
 
 
 def main(argv=None):
+    reexec_with_returning_allocator()
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--sizes", default="2000,10000,50000", help="training fleet sizes in units")
     parser.add_argument("--test-units", type=int, default=10_000)
