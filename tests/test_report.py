@@ -461,3 +461,10 @@ def test_report_from_the_scenario_fleet(tmp_path):
     assert parsed.sections == ["fleet", "data-quality", "cautions"]
     # the scenario's baseline hazard is Weibull with shape 2 (wearcast.scenario docstring): rising
     assert "looks rising with age" in " ".join(parsed.text)
+
+
+def test_no_unfilled_template_fields_in_the_page(built):
+    _, _, page, _ = built
+    text = re.sub(r'src="data:[^"]*"', "", page)
+    text = re.sub(r"<style>.*?</style>", "", text, flags=re.S)
+    assert not re.search(r"\{[A-Za-z_][A-Za-z0-9_]*\}", text), "a caption still shows a {placeholder}"

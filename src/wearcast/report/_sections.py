@@ -59,7 +59,7 @@ def headline(inputs) -> Section:
                     "forecast_by_group", figures["forecast_by_group"],
                     "Expected failures per group and horizon with intervals",
                     f"Expected failures in each group for each planning horizon. The dot is the expected "
-                    "number, the thin dark line its {level} interval including model uncertainty, the wide "
+                    f"number, the thin dark line its {level} interval including model uncertainty, the wide "
                     "light band the spread from chance alone."))
     facts = _summary_facts(inputs.summary)
     if facts:
