@@ -66,6 +66,70 @@ class FlatTree:
         return int((self.leaf >= 0).sum())
 
 
+def episodes(unit_codes: np.ndarray, life: np.ndarray, exit: np.ndarray, event: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Group rows into episodes: the rows of one unit's life up to and including
+    a failure (a life under repair holds several episodes).
+
+    Returns ``(episode, last_row)``: ``episode`` (n,) int64 episode number of
+    each row; ``last_row`` (n_episodes,) the row closing each episode (its
+    failure, or the life's last row). Every failure closes an episode, so a
+    tree grown on the closing rows keeps each failure with its episode.
+    """
+    order = np.lexsort((exit, life, unit_codes))
+    u, l, ev = unit_codes[order], life[order], np.asarray(event, bool)[order]
+    starts = np.ones(len(order), bool)
+    starts[1:] = (u[1:] != u[:-1]) | (l[1:] != l[:-1]) | ev[:-1]
+    episode = np.empty(len(order), np.int64)
+    episode[order] = np.cumsum(starts) - 1
+    closes = np.ones(len(order), bool)
+    closes[:-1] = starts[1:]
+    return episode, order[closes]
+
+
+def grow_on_points(
+    X: np.ndarray,
+    residual: np.ndarray,
+    weights: np.ndarray,
+    events: np.ndarray,
+    *,
+    max_features,
+    max_depth: int,
+    min_events: int,
+    random_state: int,
+):
+    """Grow one pruned tree on growing points (rows or episodes) with positive weight.
+
+    ``X`` float32 (k, p) covariates of the points; ``residual`` (k,) their
+    martingale residuals (summed over an episode's rows); ``weights`` (k,)
+    bootstrap multiplicities; ``events`` (k,) failures per point (unweighted).
+    Returns ``(tree, regressor, node_to_leaf)``: the flattened pruned tree, the
+    fitted scikit-learn regressor (None for a single leaf) and, per regressor
+    node, the pruned tree's leaf that covers it (used to route many rows with
+    the regressor's compiled ``apply``).
+    """
+    failure_share = max(float(np.average(events, weights=weights)), 1e-12)
+    min_rows = max(1, min(len(weights), math.ceil(min_events / failure_share)))
+    if max_depth <= 0 or events.sum() == 0 or X.shape[1] == 0:
+        return _single_leaf(), None, np.zeros(1, np.int64)
+    regressor = DecisionTreeRegressor(
+        max_depth=max_depth,
+        min_samples_leaf=min_rows,
+        max_features=max_features,
+        random_state=random_state,
+    )
+    regressor.fit(X, residual, sample_weight=weights)
+    tree, node_to_leaf = prune_by_events(regressor.tree_, regressor.apply(X), events * weights, min_events)
+    return tree, regressor, node_to_leaf
+
+
+def route(regressor, node_to_leaf: np.ndarray, X: np.ndarray) -> np.ndarray:
+    """Pruned-tree leaf (n,) of each row of ``X`` (float32 (n, p), C order) via the
+    regressor's compiled ``apply``; gives the same leaves as :func:`apply_tree`."""
+    if regressor is None:
+        return np.zeros(len(X), np.int64)
+    return node_to_leaf[regressor.apply(X, check_input=False)]
+
+
 def grow_tree(
     X: np.ndarray,
     entry: np.ndarray,
@@ -78,27 +142,18 @@ def grow_tree(
     min_events: int,
     random_state: int,
 ) -> FlatTree:
-    """Grow one tree on the rows with positive weight.
+    """Grow one tree on the rows with positive weight (each row its own growing point).
 
     ``X`` float32 (n, p); ``entry``/``exit`` days (n,); ``event`` bool (n,);
     ``weights`` (n,) bootstrap multiplicities (0 = out of bag). Returns the
     pruned, flattened tree.
     """
     rows = np.flatnonzero(weights > 0)
-    X_in, w_in, ev_in = X[rows], weights[rows].astype(float), event[rows]
+    w_in, ev_in = weights[rows].astype(float), np.asarray(event, bool)[rows]
     residual = martingale_residuals(entry[rows], exit[rows], ev_in, w_in)
-    failure_share = max(float(np.average(ev_in, weights=w_in)), 1e-12)
-    min_rows = max(1, min(len(rows), math.ceil(min_events / failure_share)))
-    if max_depth <= 0 or ev_in.sum() == 0 or X.shape[1] == 0:
-        return _single_leaf()
-    regressor = DecisionTreeRegressor(
-        max_depth=max_depth,
-        min_samples_leaf=min_rows,
-        max_features=max_features,
-        random_state=random_state,
-    )
-    regressor.fit(X_in, residual, sample_weight=w_in)
-    return prune_by_events(regressor.tree_, regressor.apply(X_in), ev_in * w_in, min_events)
+    return grow_on_points(np.ascontiguousarray(X[rows], np.float32), residual, w_in, ev_in.astype(float),
+                          max_features=max_features, max_depth=max_depth, min_events=min_events,
+                          random_state=random_state)[0]
 
 
 def _single_leaf() -> FlatTree:
@@ -109,11 +164,14 @@ def _single_leaf() -> FlatTree:
     )
 
 
-def prune_by_events(tree, node_of_row: np.ndarray, row_events: np.ndarray, min_events: float) -> FlatTree:
+def prune_by_events(tree, node_of_row: np.ndarray, row_events: np.ndarray,
+                    min_events: float) -> tuple[FlatTree, np.ndarray]:
     """Cut splits leaving fewer than ``min_events`` failures on a side; flatten.
 
     ``tree`` is a fitted scikit-learn ``Tree``; ``node_of_row`` (n,) the leaf
     each in-bag row reached; ``row_events`` (n,) weighted failures per row.
+    Returns the flat tree and ``node_to_leaf`` (n_nodes,) int64: the pruned
+    leaf covering each scikit-learn node.
     """
     left, right = tree.children_left, tree.children_right
     n_nodes = tree.node_count
@@ -123,6 +181,7 @@ def prune_by_events(tree, node_of_row: np.ndarray, row_events: np.ndarray, min_e
     for node in range(n_nodes - 1, -1, -1):
         if left[node] >= 0:
             events[node] = events[left[node]] + events[right[node]]
+    node_to_leaf = np.full(n_nodes, -1, np.int64)
     new_feature, new_threshold, new_left, new_right, new_missing, new_leaf = [], [], [], [], [], []
     n_leaves = 0
     stack = [(0, -1, False)]  # (old node, new parent, is right child)
@@ -148,12 +207,18 @@ def prune_by_events(tree, node_of_row: np.ndarray, row_events: np.ndarray, min_e
             new_leaf.append(n_leaves)
             new_left.append(-1)
             new_right.append(-1)
+            node_to_leaf[old] = n_leaves
             n_leaves += 1
-    return FlatTree(
+    # nodes below a cut inherit their cut ancestor's leaf (parents precede children)
+    for node in range(n_nodes):
+        if node_to_leaf[node] >= 0 and left[node] >= 0:
+            node_to_leaf[left[node]] = node_to_leaf[right[node]] = node_to_leaf[node]
+    flat = FlatTree(
         feature=np.array(new_feature, np.int32), threshold=np.array(new_threshold, np.float64),
         left=np.array(new_left, np.int32), right=np.array(new_right, np.int32),
         missing_left=np.array(new_missing, bool), leaf=np.array(new_leaf, np.int32),
     )
+    return flat, node_to_leaf
 
 
 def apply_tree(tree: FlatTree, X: np.ndarray) -> np.ndarray:

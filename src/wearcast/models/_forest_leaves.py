@@ -9,11 +9,21 @@ Between grid ages the forest uses a right-continuous step: ``H(t)`` is the
 value at the last grid age ``<= t`` (0 before the first grid age, the last
 value after the last). With the grid equal to all distinct failure ages this
 is the exact Nelson–Aalen step function.
+
+Speed: everything that does not depend on a tree's bootstrap draw is located
+once per fit in a :class:`RiskIndex` (each row's first and last failure age at
+risk); a tree then needs only weighted ``bincount`` and ``cumsum`` calls, no
+sort.
 """
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import numpy as np
+
+#: Largest (leaves x failure ages) block of float64 cells held at once per tree.
+MAX_BLOCK_CELLS = 1 << 22
 
 
 def failure_age_grid(exit: np.ndarray, event: np.ndarray, max_points: int) -> np.ndarray:
@@ -29,6 +39,93 @@ def failure_age_grid(exit: np.ndarray, event: np.ndarray, max_points: int) -> np
     probs = np.linspace(0.0, 1.0, max_points)
     grid = np.quantile(np.asarray(exit, float)[np.asarray(event, bool)], probs, method="inverted_cdf")
     return np.unique(grid)
+
+
+@dataclass(frozen=True)
+class RiskIndex:
+    """Rows placed among the ``D`` distinct failure ages; built once per fit.
+
+    ``first`` (n,) int64: index of the first failure age ``> entry``;
+    ``stop`` (n,) int64: number of failure ages ``<= exit``. A row is at risk
+    at failure age ``k`` exactly when ``first <= k < stop``. ``fail_rows`` (f,)
+    rows that failed and ``fail_at`` (f,) their failure-age index.
+    ``grid_at`` (m,) index of the last failure age ``<= grid_k`` (-1 before the first).
+    """
+
+    n_ages: int
+    first: np.ndarray
+    stop: np.ndarray
+    fail_rows: np.ndarray
+    fail_at: np.ndarray
+    grid_at: np.ndarray
+
+
+def risk_index(entry: np.ndarray, exit: np.ndarray, event: np.ndarray, grid: np.ndarray) -> RiskIndex:
+    """Locate rows (``entry``/``exit`` days, ``event`` bool, shape (n,)) among the failure ages."""
+    entry = np.asarray(entry, float)
+    exit = np.asarray(exit, float)
+    event = np.asarray(event, bool)
+    ages = np.unique(exit[event])
+    fail_rows = np.flatnonzero(event)
+    return RiskIndex(
+        n_ages=len(ages),
+        first=np.searchsorted(ages, entry, side="right"),
+        stop=np.searchsorted(ages, exit, side="right"),
+        fail_rows=fail_rows,
+        fail_at=np.searchsorted(ages, exit[fail_rows], side="left"),
+        grid_at=np.searchsorted(ages, np.asarray(grid, float), side="right") - 1,
+    )
+
+
+def pooled_cumulative_hazard(index: RiskIndex, weights: np.ndarray) -> np.ndarray:
+    """Weighted Nelson–Aalen with delayed entry of all rows, shape (D + 1,):
+    entry ``k`` is the cumulative hazard summed over failure ages ``0..k-1``
+    (entry 0 is 0). A row's expected failures are ``H[stop] - H[first]``."""
+    D = index.n_ages
+    w = np.asarray(weights, float)
+    at_risk = np.cumsum(np.bincount(index.first, w, D + 1) - np.bincount(index.stop, w, D + 1))[:D]
+    deaths = np.bincount(index.fail_at, w[index.fail_rows], D)
+    increment = np.divide(deaths, at_risk, out=np.zeros(D), where=deaths > 0)
+    return np.concatenate([[0.0], np.cumsum(increment)])
+
+
+def leaf_hazards_indexed(index: RiskIndex, leaf: np.ndarray, n_leaves: int, weights: np.ndarray) -> np.ndarray:
+    """Nelson–Aalen with delayed entry per leaf at the grid ages, float32 (n_leaves, m).
+
+    ``leaf`` (n,) leaf number of each row; ``weights`` (n,) case weights (0 =
+    not in this tree's sample). Leaves are done in blocks of at most
+    ``MAX_BLOCK_CELLS`` (leaf, failure age) cells: at-risk counts are a cumulative
+    sum of +w at ``first`` and -w at ``stop`` per leaf.
+    """
+    D, m = index.n_ages, len(index.grid_at)
+    out = np.zeros((n_leaves, m), np.float32)
+    if D == 0 or m == 0 or n_leaves == 0:
+        return out
+    w = np.asarray(weights, float)
+    leaf = np.asarray(leaf, np.int64)
+    used = w > 0
+    fail_leaf, fail_w = leaf[index.fail_rows], w[index.fail_rows]
+    columns = np.maximum(index.grid_at, 0)
+    before = index.grid_at < 0
+    block = max(1, MAX_BLOCK_CELLS // (D + 1))
+    for lo in range(0, n_leaves, block):
+        hi = min(n_leaves, lo + block)
+        rows = used if (lo == 0 and hi == n_leaves) else used & (leaf >= lo) & (leaf < hi)
+        rows = np.flatnonzero(rows)
+        k = hi - lo
+        base = (leaf[rows] - lo) * (D + 1)
+        cells = k * (D + 1)
+        diff = (np.bincount(base + index.first[rows], w[rows], cells)
+                - np.bincount(base + index.stop[rows], w[rows], cells))
+        at_risk = np.cumsum(diff.reshape(k, D + 1), axis=1)[:, :D]
+        in_block = (fail_leaf >= lo) & (fail_leaf < hi) & (fail_w > 0)
+        deaths = np.bincount((fail_leaf[in_block] - lo) * D + index.fail_at[in_block], fail_w[in_block], k * D)
+        deaths = deaths.reshape(k, D)  # (bincount gives int64 zeros when a block holds no failure)
+        hazard = np.cumsum(np.divide(deaths, at_risk, out=np.zeros((k, D)), where=deaths > 0), axis=1)
+        values = hazard[:, columns]
+        values[:, before] = 0.0
+        out[lo:hi] = values
+    return out
 
 
 def leaf_hazards_on_grid(
@@ -47,40 +144,11 @@ def leaf_hazards_on_grid(
     ``grid`` (m,) increasing ages. Returns float32 (n_leaves, m) with
     ``H_leaf(grid_k) = sum over failure ages s <= grid_k of d(s) / Y(s)``,
     ``Y(s)`` the weighted count of the leaf's rows with ``entry < s <= exit``.
-    All leaves at once: at-risk counts come from searchsorted on
-    (leaf, age-rank) keys, no loop over leaves.
+    One-off form of :func:`leaf_hazards_indexed` (builds the index first).
     """
     keep = np.asarray(weights) > 0
-    leaf = np.asarray(leaf, np.int64)[keep]
-    entry = np.asarray(entry, float)[keep]
-    exit = np.asarray(exit, float)[keep]
-    event = np.asarray(event, bool)[keep]
-    w = np.asarray(weights, float)[keep]
-    out = np.zeros((n_leaves, len(grid)), dtype=np.float64)
-    if not event.any() or len(grid) == 0:
-        return out.astype(np.float32)
-    ages = np.unique(np.concatenate([entry, exit]))
-    span = len(ages) + 1
-    entry_key = leaf * span + np.searchsorted(ages, entry)
-    exit_key = leaf * span + np.searchsorted(ages, exit)
-    fail_key = exit_key[event]
-    # weighted count of rows with exit key >= (leaf, s) minus rows with entry
-    # key >= (leaf, s): rows of later leaves appear in both and cancel, rows of
-    # earlier leaves in neither, leaving the leaf's rows with entry < s <= exit
-    at_risk = _tail_sum(exit_key, w, fail_key) - _tail_sum(entry_key, w, fail_key)
-    increment = w[event] / np.where(at_risk > 0, at_risk, np.inf)
-    # a failure at s adds to every grid age >= s
-    column = np.searchsorted(grid, exit[event], side="left")
-    inside = column < len(grid)
-    np.add.at(out, (leaf[event][inside], column[inside]), increment[inside])
-    return np.cumsum(out, axis=1).astype(np.float32)
-
-
-def _tail_sum(keys: np.ndarray, w: np.ndarray, query: np.ndarray) -> np.ndarray:
-    """Sum of ``w`` over keys ``>= query``, shape of ``query``."""
-    order = np.argsort(keys, kind="mergesort")
-    tail = np.concatenate([np.cumsum(w[order][::-1])[::-1], [0.0]])
-    return tail[np.searchsorted(keys[order], query, side="left")]
+    index = risk_index(np.asarray(entry)[keep], np.asarray(exit)[keep], np.asarray(event, bool)[keep], grid)
+    return leaf_hazards_indexed(index, np.asarray(leaf)[keep], n_leaves, np.asarray(weights, float)[keep])
 
 
 def grid_column(grid: np.ndarray, ages: np.ndarray) -> np.ndarray:

@@ -32,17 +32,37 @@ from joblib import Parallel, delayed
 from wearcast import _atomic
 from wearcast.exceptions import BundleError, ConfigError, ModelError
 from wearcast.models._forest_encode import encode, encoded_names, learn_levels
-from wearcast.models._forest_grow import FlatTree, apply_tree, grow_tree
-from wearcast.models._forest_leaves import failure_age_grid, grid_column, leaf_hazards_on_grid
+from wearcast.models._forest_grow import FlatTree, apply_tree, episodes, grow_on_points, route
+from wearcast.models._forest_leaves import (
+    RiskIndex, failure_age_grid, grid_column, leaf_hazards_indexed, pooled_cumulative_hazard, risk_index,
+)
 from wearcast.models._forest_oob import (
     MAX_SCORED_LIVES, OOBAccumulator, bootstrap_draw, harrell_c, last_rows_of_lives,
 )
 from wearcast.models.base import SurvivalModel
 
 MODES = ("random_forest", "bagging")
+GROW_ON = ("episodes", "rows")
 SETTINGS_FILE = "forest.json"
 ARRAYS_FILE = "forest_arrays.npz"
-FORMAT_VERSION = 1
+# 2 added the grow_on setting; version 1 files (grown on rows) still load
+FORMAT_VERSION = 2
+READABLE_VERSIONS = (1, 2)
+
+
+@dataclass(frozen=True)
+class _FitData:
+    """Everything a tree needs that does not depend on its bootstrap draw (built once per fit)."""
+
+    X: np.ndarray  # float32 (n_rows, p), C order
+    event: np.ndarray  # float64 (n_rows,) 1 = failed
+    units: np.ndarray  # int (n_rows,) unit code
+    n_units: int
+    index: RiskIndex
+    lives: np.ndarray  # (n_lives,) last row of each life
+    point_of_row: np.ndarray | None  # (n_rows,) episode of each row; None when growing on rows
+    point_rows: np.ndarray | None  # (n_episodes,) closing row of each episode
+    point_X: np.ndarray | None  # float32 (n_episodes, p) covariates of the closing rows
 
 
 @dataclass(frozen=True)
@@ -50,6 +70,7 @@ class _GrownTree:
     tree: FlatTree
     leaf_hazard: np.ndarray  # float32 (n_leaves, n_grid)
     life_risk: np.ndarray  # float64 (n_lives,) the tree's risk at each life's last row
+    counts: np.ndarray  # int32 (n_units,) the tree's bootstrap draw
 
 
 class SurvivalForest(SurvivalModel):
@@ -60,7 +81,11 @@ class SurvivalForest(SurvivalModel):
     ``min_events_per_leaf`` (weighted failures each side of a split),
     ``max_depth``, ``time_grid_points`` (at most this many grid ages),
     ``bootstrap`` (False: every tree sees every unit once; no OOB), ``seed``,
-    ``n_jobs`` (threads; results do not depend on it).
+    ``n_jobs`` (threads; results do not depend on it), ``grow_on``
+    ("episodes": splits are chosen on one point per episode, the rows of a
+    life up to a failure, with the episode's summed residual and its closing
+    row's covariates; "rows": on every counting-process row). Leaf hazards
+    always use every in-bag row.
     """
 
     name = "forest"
@@ -77,6 +102,7 @@ class SurvivalForest(SurvivalModel):
         bootstrap: bool = True,
         seed: int = 0,
         n_jobs: int = 1,
+        grow_on: str = "episodes",
     ):
         if mode not in MODES:
             raise ConfigError(f"[model.forest] mode = {mode!r} is not known; use one of {', '.join(MODES)}.")
@@ -92,7 +118,10 @@ class SurvivalForest(SurvivalModel):
                 "[model.forest] min_events_per_leaf must be >= 1, max_depth >= 0 and time_grid_points >= 2; "
                 f"got {min_events_per_leaf}, {max_depth}, {time_grid_points}."
             )
+        if grow_on not in GROW_ON:
+            raise ConfigError(f"grow_on = {grow_on!r} is not known; use one of {', '.join(GROW_ON)}.")
         self.mode = mode
+        self.grow_on = grow_on
         self.n_trees = int(n_trees)
         self.predictors_per_split = predictors_per_split
         self.min_events_per_leaf = int(min_events_per_leaf)
@@ -112,7 +141,7 @@ class SurvivalForest(SurvivalModel):
         return {"mode": self.mode, "n_trees": self.n_trees, "predictors_per_split": self.predictors_per_split,
                 "min_events_per_leaf": self.min_events_per_leaf, "max_depth": self.max_depth,
                 "time_grid_points": self.time_grid_points, "bootstrap": self.bootstrap,
-                "seed": self.seed, "n_jobs": self.n_jobs}
+                "seed": self.seed, "n_jobs": self.n_jobs, "grow_on": self.grow_on}
 
     def unfitted_copy(self, seed: int) -> "SurvivalForest":
         return type(self)(**{**self.settings(), "seed": int(seed)})
@@ -134,23 +163,30 @@ class SurvivalForest(SurvivalModel):
         X = encode(table.X, self.covariates_, self.levels_)
         entry, exit, event = table.entry, table.exit, table.event
         units = table.unit_codes()
+        life = table.frame["life"].to_numpy()
         n_units = int(units.max()) + 1
         self.grid_ = failure_age_grid(exit, event, self.time_grid_points)
         rng = np.random.default_rng(self.seed)
         self.tree_seeds_ = rng.integers(0, 2**63 - 1, size=self.n_trees, dtype=np.int64)
         scoring_seed = int(rng.integers(0, 2**63 - 1))
-        lives = last_rows_of_lives(units, table.frame["life"].to_numpy(), exit)
+        lives = last_rows_of_lives(units, life, exit)
         scored = np.arange(len(lives))
         if len(lives) > MAX_SCORED_LIVES:
             scored = np.sort(np.random.default_rng(scoring_seed).choice(len(lives), MAX_SCORED_LIVES, replace=False))
+        point_of_row = point_rows = point_X = None
+        if self.grow_on == "episodes":
+            point_of_row, point_rows = episodes(units, life, exit, event)
+            point_X = np.ascontiguousarray(X[point_rows])
+        data = _FitData(np.ascontiguousarray(X), np.asarray(event, float), units, n_units,
+                        risk_index(entry, exit, event, self.grid_), lives, point_of_row, point_rows, point_X)
         oob = OOBAccumulator(event[lives], exit[lives], units[lives], self.n_trees, scored)
-        jobs = (delayed(self._grow_one)(int(s), X, entry, exit, event, units, n_units, lives) for s in self.tree_seeds_)
+        jobs = (delayed(self._grow_one)(int(s), data) for s in self.tree_seeds_)
         trees, hazards = [], []
-        for b, grown in enumerate(Parallel(n_jobs=self.n_jobs, prefer="threads", return_as="generator")(jobs)):
+        for grown in Parallel(n_jobs=self.n_jobs, prefer="threads", return_as="generator")(jobs):
             trees.append(grown.tree)
             hazards.append(grown.leaf_hazard)
             if self.bootstrap:
-                oob.add(grown.life_risk, bootstrap_draw(int(self.tree_seeds_[b]), n_units)[0])
+                oob.add(grown.life_risk, grown.counts)
         self._set_trees(trees, hazards)
         self.oob_risk_ = oob.risk() if self.bootstrap else np.full(len(lives), np.nan)
         self.oob_concordance_ = oob.curve[-1][1] if oob.curve else float("nan")
@@ -162,17 +198,27 @@ class SurvivalForest(SurvivalModel):
         counts, tree_seed = bootstrap_draw(seed, n_units)
         return (counts if self.bootstrap else np.ones(n_units, np.int32)), tree_seed
 
-    def _grow_one(self, seed, X, entry, exit, event, units, n_units, lives) -> _GrownTree:
-        counts, tree_seed = self._draw(seed, n_units)
-        weights = counts[units].astype(float)
-        tree = grow_tree(X, entry, exit, event, weights, max_features=self._max_features(),
-                         max_depth=self.max_depth, min_events=self.min_events_per_leaf, random_state=tree_seed)
-        rows = np.flatnonzero(weights > 0)
-        leaf = np.zeros(len(X), np.int32)
-        leaf[rows] = apply_tree(tree, X[rows])
-        hazard = leaf_hazards_on_grid(leaf, tree.n_leaves, entry, exit, event, weights, self.grid_)
-        life_risk = hazard.sum(axis=1, dtype=np.float64)[apply_tree(tree, X[lives])]
-        return _GrownTree(tree, hazard, life_risk)
+    def _grow_one(self, seed: int, data: _FitData) -> _GrownTree:
+        counts, tree_seed = self._draw(seed, data.n_units)
+        weights = counts[data.units].astype(float)
+        # delayed-entry martingale residual of every row under the tree's pooled Nelson-Aalen
+        pooled = pooled_cumulative_hazard(data.index, weights)
+        residual = data.event - (pooled[data.index.stop] - pooled[data.index.first])
+        if data.point_rows is None:
+            points = np.flatnonzero(weights > 0)
+            point_X, point_residual, point_rows = np.ascontiguousarray(data.X[points]), residual[points], points
+        else:
+            point_residual = np.bincount(data.point_of_row, residual, len(data.point_rows))
+            points = np.flatnonzero(counts[data.units[data.point_rows]] > 0)
+            point_X, point_residual = data.point_X[points], point_residual[points]
+            point_rows = data.point_rows[points]
+        tree, regressor, node_to_leaf = grow_on_points(  # a failure always closes its episode
+            point_X, point_residual, weights[point_rows], data.event[point_rows], max_features=self._max_features(),
+            max_depth=self.max_depth, min_events=self.min_events_per_leaf, random_state=tree_seed)
+        leaf = route(regressor, node_to_leaf, data.X)
+        hazard = leaf_hazards_indexed(data.index, leaf, tree.n_leaves, weights)
+        life_risk = hazard.sum(axis=1, dtype=np.float64)[leaf[data.lives]]
+        return _GrownTree(tree, hazard, life_risk, counts)
 
     def _set_trees(self, trees: list[FlatTree], hazards: list[np.ndarray]) -> None:
         self.trees_ = trees
@@ -276,10 +322,12 @@ class SurvivalForest(SurvivalModel):
                 arrays = {k: data[k] for k in data.files}
         except (OSError, ValueError, KeyError) as exc:
             raise BundleError(f"cannot read the forest in {folder}: {exc}. Re-save the model.") from exc
-        if meta.get("format_version") != FORMAT_VERSION:
-            raise BundleError(f"{folder / SETTINGS_FILE}: format_version {meta.get('format_version')} "
-                              f"is not {FORMAT_VERSION}; refit and save with this wearcast version.")
-        model = cls(**meta["settings"])
+        version = meta.get("format_version")
+        if version not in READABLE_VERSIONS:
+            raise BundleError(f"{folder / SETTINGS_FILE}: format_version {version!r} is not one this wearcast "
+                              f"reads ({', '.join(map(str, READABLE_VERSIONS))}); refit and save with this "
+                              "wearcast version, or load it with the version that wrote it.")
+        model = cls(**{"grow_on": "rows" if version == 1 else "episodes", **meta["settings"]})
         model.covariates_ = tuple(meta["covariates"])
         model.levels_ = {k: list(v) for k, v in meta["levels"].items()}
         model.feature_names_ = list(meta["feature_names"])
