@@ -51,23 +51,64 @@ class BuildSettings:
 
 @dataclass
 class BuildOutcome:
-    """Rows of the life table plus where every input row went."""
+    """Rows of the life table plus where every input row went.
+
+    Rows are named by their file (``_source``) and index label (the row's
+    position in that file's raw table). ``rejected`` holds tuples
+    ``(source, index, column, values, reason)`` where ``column``/``reason`` are
+    one string or arrays aligned with ``index``; ``kept`` and ``after_as_of``
+    hold ``(source, index)`` pairs.
+    """
 
     frame: pd.DataFrame
-    rejected: list[tuple[str, int, str, str, str]] = field(default_factory=list)  # source, line, column, value, reason
-    after_as_of: set[tuple[str, int]] = field(default_factory=set)
-    kept: set[tuple[str, int]] = field(default_factory=set)
+    rejected: list = field(default_factory=list)
+    after_as_of: list = field(default_factory=list)
+    kept: list = field(default_factory=list)
 
-    def reject(self, row, column: str, value, reason: str) -> None:
-        self.rejected.append((str(row["_source"]), int(row["_line"]), column, str(value), reason))
+    def reject(self, source: str, index: np.ndarray, column, values, reason) -> None:
+        if len(index):
+            self.rejected.append((source, np.asarray(index), column, np.asarray(values, dtype=object), reason))
 
+    def set_aside(self, source: str, index: np.ndarray) -> None:
+        if len(index):
+            self.after_as_of.append((source, np.asarray(index)))
 
-def _key(row) -> tuple[str, int]:
-    return (str(row["_source"]), int(row["_line"]))
+    def keep(self, source: str, index: np.ndarray) -> None:
+        if len(index):
+            self.kept.append((source, np.asarray(index)))
+
+    @property
+    def n_kept(self) -> int:
+        return int(sum(len(i) for _, i in self.kept))
+
+    @property
+    def n_after_as_of(self) -> int:
+        return int(sum(len(i) for _, i in self.after_as_of))
 
 
 def _day(ts) -> str:
     return "" if pd.isna(ts) else pd.Timestamp(ts).strftime("%Y-%m-%d")
+
+
+def _days(values) -> list[str]:
+    return [_day(t) for t in np.asarray(values)]
+
+
+def _source(frame: pd.DataFrame) -> str:
+    return str(frame["_source"].iloc[0]) if len(frame) else ""
+
+
+def _codes_in(values: pd.Series, ids: pd.Index) -> np.ndarray:
+    """Position of each value in ``ids`` (-1 when absent), looked up once per distinct value."""
+    if isinstance(values.dtype, pd.CategoricalDtype):
+        table = ids.get_indexer(values.cat.categories)
+        codes = values.cat.codes.to_numpy()
+        return np.where(codes < 0, -1, table[np.maximum(codes, 0)])
+    return ids.get_indexer(values.to_numpy(dtype=object))
+
+
+def _ns(values) -> np.ndarray:
+    return np.asarray(values, dtype="datetime64[ns]")
 
 
 def build_register_log(register: pd.DataFrame, events: pd.DataFrame, readings: pd.DataFrame | None,
@@ -81,176 +122,301 @@ def build_register_log(register: pd.DataFrame, events: pd.DataFrame, readings: p
     register and every event/reading unit is in it (the caller checks both).
     Returns a :class:`BuildOutcome` whose ``frame`` has the life-table columns
     (ages in days) plus install_date, entry_date, exit_date and register columns.
+
+    Whole-column work (sorts, masks, searchsorted); only the event log is
+    walked row by row, because each event's meaning depends on the one before.
     """
     out = BuildOutcome(frame=pd.DataFrame())
-    as_of = settings.as_of
-    units: dict[str, dict] = {}
-    install_of = dict(zip(register["unit_id"], register["install_date"]))
-    for row in register.sort_values(["unit_id"], kind="mergesort").to_dict("records"):
-        install, decom = row["install_date"], row["decommission_date"]
-        if install > as_of:
-            if settings.backtest:
-                out.after_as_of.add(_key(row))
-            else:
-                out.reject(row, "install_date", _day(install), "installed after as_of")
-            continue
-        if settings.backtest and pd.notna(decom) and decom > as_of:
-            decom = pd.NaT  # not yet recorded on the as_of date
-        if pd.notna(decom) and decom <= install:
-            out.reject(row, "decommission_date", _day(decom), "decommission not after install (zero or negative duration)")
-            continue
-        out.kept.add(_key(row))
-        units[row["unit_id"]] = {"row": row, "install": install, "end": decom, "events": [], "readings": []}
-    dropped_units = set(register["unit_id"]) - set(units)
+    as_of = np.datetime64(pd.Timestamp(settings.as_of).to_datetime64(), "ns")
+    nat = np.datetime64("NaT", "ns")
+    src = _source(register)
+    reg_index = register.index.to_numpy()
+    reg_ids = np.asarray(register["unit_id"], dtype=object)
+    ids = pd.Index(reg_ids).sort_values()  # unit codes follow the text order of the ids
+    n_units = len(ids)
+    unit_row = np.empty(n_units, dtype=np.int64)
+    unit_row[ids.get_indexer(reg_ids)] = np.arange(len(reg_ids))
+    install = _ns(register["install_date"])[unit_row]
+    decom = _ns(register["decommission_date"])[unit_row]
+    reg_pos = reg_index[unit_row]
 
-    def _sort_in(frame, date_col, target):
-        if frame is None or frame.empty:
-            return
-        order = frame.assign(_rank=frame.get("event_kind", pd.Series("", index=frame.index)).map(KIND_ORDER).fillna(0))
-        # Same-date rows are ordered by their contents, never by file position, so the
-        # row that wins (and the one quarantined as a repeat) does not depend on row order.
-        sort_cols = ["unit_id", date_col, "_rank"] + (["failure_mode"] if "failure_mode" in frame else []) \
-            + [c for c in settings.reading_columns if c in frame]
-        for row in order.sort_values(sort_cols + ["_source", "_line"], kind="mergesort").to_dict("records"):
-            uid, when = row["unit_id"], row[date_col]
-            if uid in dropped_units:
-                # The unit's register row was rejected or lies after as_of: follow it.
-                if settings.backtest and install_of[uid] > as_of:
-                    out.after_as_of.add(_key(row))
-                else:
-                    out.reject(row, "unit_id", uid, "unit's register row was rejected")
-                continue
-            if when > as_of:
-                if settings.backtest:
-                    out.after_as_of.add(_key(row))
-                else:
-                    out.reject(row, date_col, _day(when), "dated after as_of")
-                continue
-            if when < units[uid]["install"]:
-                out.reject(row, date_col, _day(when), "dated before install")
-                continue
-            units[uid][target].append(row)
+    late = install > as_of
+    if settings.backtest:
+        out.set_aside(src, reg_pos[late])
+        decom = np.where(~late & (decom > as_of), nat, decom)  # not yet recorded on the as_of date
+    else:
+        out.reject(src, reg_pos[late], "install_date", _days(install[late]), "installed after as_of")
+    bad = ~late & ~np.isnat(decom) & (decom <= install)
+    out.reject(src, reg_pos[bad], "decommission_date", _days(decom[bad]),
+               "decommission not after install (zero or negative duration)")
+    unit_ok = ~late & ~bad
+    out.keep(src, reg_pos[unit_ok])
 
-    _sort_in(events, "event_date", "events")
-    _sort_in(readings, "reading_date", "readings")
+    ev = _sorted_log(events, "event_date", settings, ids, install, unit_ok, as_of, out)
+    rd = _sorted_log(readings, "reading_date", settings, ids, install, unit_ok, as_of, out)
 
-    pieces = []
-    for uid in sorted(units):
-        pieces.extend(_unit_rows(units[uid], settings, out))
-    columns = ["unit_id", "life", "entry_age", "exit_age", "failed", "mode", "in_service",
-               "install_date", "entry_date", "exit_date", *settings.register_columns, *settings.reading_columns]
-    frame = pd.DataFrame(pieces, columns=columns)
-    frame["failed"] = frame["failed"].astype(bool)
-    frame["in_service"] = frame["in_service"].astype(bool)
-    out.frame = frame
+    # -- events: the first decommission (register column or log) ends observation --
+    if ev is None:
+        ev = {"code": np.zeros(0, np.int64), "date": np.zeros(0, "datetime64[ns]"), "index": np.zeros(0, np.int64),
+              "kind": np.zeros(0, object), "mode": np.zeros(0, object), "source": ""}
+    is_decom = ev["kind"] == "decommission"
+    at_install = is_decom & (ev["date"] <= install[ev["code"]])
+    out.reject(ev["source"], ev["index"][at_install], "event_date", _days(ev["date"][at_install]),
+               "event on the install date (zero duration)")
+    ev = {k: (v[~at_install] if isinstance(v, np.ndarray) else v) for k, v in ev.items()}
+    is_decom = ev["kind"] == "decommission"
+    first_decom = np.full(n_units, nat)
+    dec_codes, first = np.unique(ev["code"][is_decom], return_index=True)
+    first_decom[dec_codes] = ev["date"][is_decom][first]  # log sorted by unit, then date
+    end_decom = np.where(np.isnat(decom), first_decom,
+                         np.where(np.isnat(first_decom), decom, np.minimum(decom, first_decom)))
+    end = np.where(np.isnat(end_decom), as_of, np.minimum(end_decom, as_of))
+    decommissioned = ~np.isnat(end_decom) & (end_decom <= as_of)
+
+    segments, status = _walk_events(ev, install, end, settings.renewal)
+    for code, column, reason in ((1, "event_date", "dated after decommission"),
+                                 (2, "event_kind", "second decommission of the unit"),
+                                 (3, "event_date", "event on the install date (zero duration)"),
+                                 (4, "event_date",
+                                  "event before or on the previous event's date (zero or negative duration)")):
+        hit = status == code
+        values = ev["kind"][hit] if column == "event_kind" else _days(ev["date"][hit])
+        out.reject(ev["source"], ev["index"][hit], column, values, reason)
+    out.keep(ev["source"], ev["index"][status == 0])
+
+    # Units with no event left: one open segment from install to the end.
+    quiet = unit_ok.copy()
+    quiet[ev["code"]] = False
+    quiet &= install < end
+    q_codes = np.flatnonzero(quiet)
+    seg = {k: np.concatenate([segments[k], v]) for k, v in {
+        "code": q_codes, "life": np.ones(len(q_codes), np.int64), "life_start": install[q_codes],
+        "start": install[q_codes], "stop": end[q_codes], "failed": np.zeros(len(q_codes), bool),
+        "mode": np.full(len(q_codes), "", dtype=object), "open": np.ones(len(q_codes), bool)}.items()}
+    order = np.argsort(seg["code"], kind="stable")
+    seg = {k: v[order] for k, v in seg.items()}
+
+    # -- readings: one per unit and date, up to the end; last value carried forward --
+    n_cols = len(settings.reading_columns)
+    if rd is None:
+        rd = {"code": np.zeros(0, np.int64), "date": np.zeros(0, "datetime64[ns]"), "index": np.zeros(0, np.int64),
+              "values": np.zeros((0, n_cols)), "source": ""}
+    after_end = rd["date"] > end[rd["code"]]
+    out.reject(rd["source"], rd["index"][after_end], "reading_date", _days(rd["date"][after_end]),
+               "dated after decommission")
+    rd = {k: (v[~after_end] if isinstance(v, np.ndarray) else v) for k, v in rd.items()}
+    repeat = np.zeros(len(rd["code"]), dtype=bool)
+    repeat[1:] = (rd["code"][1:] == rd["code"][:-1]) & (rd["date"][1:] == rd["date"][:-1])
+    out.reject(rd["source"], rd["index"][repeat], "reading_date", _days(rd["date"][repeat]),
+               "second reading of the unit on the same date")
+    rd = {k: (v[~repeat] if isinstance(v, np.ndarray) else v) for k, v in rd.items()}
+    out.keep(rd["source"], rd["index"])
+    values = rd["values"]
+    if n_cols and np.isnan(values).any():
+        filled = pd.DataFrame(values).groupby(rd["code"], sort=False).ffill()
+        values = filled.groupby(rd["code"], sort=False).bfill().to_numpy()
+
+    out.frame = _pieces(seg, rd["code"], rd["date"], values, register, unit_row, ids, install, decommissioned,
+                        settings)
     return out
 
 
-def _unit_rows(unit: dict, s: BuildSettings, out: BuildOutcome) -> list[list]:
-    install = unit["install"]
-    # The first decommission (register column or log event) ends observation.
-    decom_events = []
-    for r in unit["events"]:
-        if r["event_kind"] == "decommission" and r["event_date"] <= install:
-            out.reject(r, "event_date", _day(r["event_date"]), "event on the install date (zero duration)")
-        elif r["event_kind"] == "decommission":
-            decom_events.append(r)
-    unit["events"] = [r for r in unit["events"] if r["event_kind"] != "decommission" or r["event_date"] > install]
-    end_decom = unit["end"]
-    if decom_events:
-        first = decom_events[0]["event_date"]
-        end_decom = first if pd.isna(end_decom) else min(end_decom, first)
-    end = s.as_of if pd.isna(end_decom) else min(end_decom, s.as_of)
-    decommissioned = pd.notna(end_decom) and end_decom <= s.as_of
+def _sorted_log(frame: pd.DataFrame | None, date_col: str, settings: BuildSettings, ids: pd.Index,
+                install: np.ndarray, unit_ok: np.ndarray, as_of, out: BuildOutcome) -> dict | None:
+    """Sort an event log or readings table; set aside or reject rows that cannot be placed.
 
-    segments = []  # life, life_start, start, stop, failed, mode
-    life, life_start, row_start, prev = 1, install, install, install
-    awaiting = False
-    seen_decommission = False
-    for r in unit["events"]:
-        d, kind = r["event_date"], r["event_kind"]
-        if d > end:
-            out.reject(r, "event_date", _day(d), "dated after decommission")
-            continue
-        if kind == "decommission":
-            if seen_decommission:
-                out.reject(r, "event_kind", kind, "second decommission of the unit")
-            else:
-                seen_decommission = True
-                out.kept.add(_key(r))
-            continue
-        repair_of_failure = kind == "replacement" and awaiting and d == prev
-        if d <= prev and not repair_of_failure:
-            reason = "event on the install date (zero duration)" if d == install and prev == install \
-                else "event before or on the previous event's date (zero or negative duration)"
-            out.reject(r, "event_date", _day(d), reason)
-            continue
-        if kind == "failure":
-            segments.append((life, life_start, row_start, d, True, str(r.get("failure_mode", ""))))
-            if s.renewal == "replace":
-                life, life_start = life + 1, d
-            row_start, awaiting = d, True
-        elif awaiting:  # replacement right after a failure: downtime is not at risk
-            if s.renewal == "repair":
-                life += 1
-            life_start, row_start, awaiting = d, d, False
-        else:  # planned renewal: the life ends as a suspension
-            segments.append((life, life_start, row_start, d, False, ""))
-            life, life_start, row_start = life + 1, d, d
-        prev = d
-        out.kept.add(_key(r))
-    open_segment = row_start < end
-    if open_segment:
-        segments.append((life, life_start, row_start, end, False, ""))
-
-    readings = []
-    for r in unit["readings"]:
-        if r["reading_date"] > end:
-            out.reject(r, "reading_date", _day(r["reading_date"]), "dated after decommission")
-        elif readings and r["reading_date"] == readings[-1]["reading_date"]:
-            out.reject(r, "reading_date", _day(r["reading_date"]), "second reading of the unit on the same date")
-        else:
-            readings.append(r)
-            out.kept.add(_key(r))
-    reading_dates = np.array([r["reading_date"] for r in readings], dtype="datetime64[ns]")
-    if s.reading_columns:
-        values = _carry_forward(np.array([[r[c] for c in s.reading_columns] for r in readings],
-                                         dtype=float).reshape(len(readings), len(s.reading_columns)))
-    static = [unit["row"][c] for c in s.register_columns]
-    obs_start = install if s.records_start is None else max(install, s.records_start)
-    uid = unit["row"]["unit_id"]
-    rows = []
-    for k, (lf, ls, a, b, failed, mode) in enumerate(segments):
-        a = max(a, obs_start)
-        if b <= a:
-            continue  # ended before records began: not observed
-        lo = int(np.searchsorted(reading_dates, np.datetime64(a), side="right"))
-        hi = int(np.searchsorted(reading_dates, np.datetime64(b), side="left"))
-        cuts = [a] + [pd.Timestamp(t) for t in reading_dates[lo:hi]] + [b]
-        last_seg = open_segment and k == len(segments) - 1
-        for j in range(len(cuts) - 1):
-            p, q = cuts[j], cuts[j + 1]
-            final = j == len(cuts) - 2
-            row = [uid, lf, (p - ls) / DAY, (q - ls) / DAY, failed and final, mode if final else "",
-                   bool(last_seg and final and not decommissioned), install, p, q, *static]
-            if s.reading_columns:
-                if len(reading_dates):
-                    idx = max(int(np.searchsorted(reading_dates, np.datetime64(p), side="right")) - 1, 0)
-                    row.extend(values[idx].tolist())
-                else:
-                    row.extend([np.nan] * len(s.reading_columns))
-            rows.append(row)
+    Returns the remaining rows as arrays in (unit, date, kind, contents) order.
+    """
+    if frame is None or frame.empty:
+        return None
+    src = _source(frame)
+    code = _codes_in(frame["unit_id"], ids)
+    keys = {"_unit": code, date_col: frame[date_col].to_numpy()}
+    kind = frame["event_kind"].map(KIND_ORDER).fillna(0) if "event_kind" in frame else None
+    keys["_rank"] = 0 if kind is None else kind.to_numpy()
+    # Same-date rows are ordered by their contents, never by file position, so the
+    # row that wins (and the one quarantined as a repeat) does not depend on row order.
+    extra = (["failure_mode"] if "failure_mode" in frame else []) \
+        + [c for c in settings.reading_columns if c in frame]
+    for c in extra:
+        keys[c] = frame[c].to_numpy()
+    keys["_line"] = frame["_line"].to_numpy()
+    table = pd.DataFrame(keys)
+    order = table.sort_values(list(keys), kind="mergesort").index.to_numpy()
+    code = code[order]
+    when = _ns(frame[date_col])[order]
+    index = frame.index.to_numpy()[order]
+    if (code < 0).any():
+        raise ValueError("a log row's unit is not in the register; the caller must check this")
+    dropped = ~unit_ok[code]
+    # The unit's register row was rejected or lies after as_of: follow it.
+    aside = dropped & (install[code] > as_of) if settings.backtest else np.zeros(len(code), bool)
+    out.set_aside(src, index[aside])
+    gone = dropped & ~aside
+    out.reject(src, index[gone], "unit_id", ids.to_numpy()[code[gone]], "unit's register row was rejected")
+    later = ~dropped & (when > as_of)
+    if settings.backtest:
+        out.set_aside(src, index[later])
+    else:
+        out.reject(src, index[later], date_col, _days(when[later]), "dated after as_of")
+    early = ~dropped & ~later & (when < install[code])
+    out.reject(src, index[early], date_col, _days(when[early]), "dated before install")
+    live = ~dropped & ~later & ~early
+    rows = {"code": code[live], "date": when[live], "index": index[live], "source": src}
+    if "event_kind" in frame:
+        rows["kind"] = np.asarray(frame["event_kind"], dtype=object)[order][live]
+        rows["mode"] = np.asarray(frame["failure_mode"], dtype=object)[order][live]
+    else:
+        cols = settings.reading_columns
+        rows["values"] = np.column_stack([frame[c].to_numpy(dtype=float)[order][live] for c in cols]) \
+            if cols else np.zeros((int(live.sum()), 0))
     return rows
 
 
-def _carry_forward(values: np.ndarray) -> np.ndarray:
-    """Fill NaN down each column (last value carried forward), then up (first value backward).
+def _walk_events(ev: dict, install: np.ndarray, end: np.ndarray, renewal: str) -> tuple[dict, np.ndarray]:
+    """Walk each unit's events in order; return its segments and a status per event.
 
-    ``values``: shape (n_readings, n_columns), readings in date order.
+    Status: 0 kept, 1 dated after decommission, 2 second decommission, 3 on the
+    install date, 4 on or before the previous event. Segments (dict of arrays):
+    code, life, life_start, start, stop, failed, mode, open (the unit's last,
+    still running segment).
     """
-    if not np.isnan(values).any():
-        return values
-    return pd.DataFrame(values).ffill().bfill().to_numpy()
+    codes = ev["code"].tolist()
+    dates = ev["date"].view(np.int64).tolist()
+    kinds = ev["kind"].tolist()
+    modes = ev["mode"].tolist()
+    inst = install.view(np.int64)
+    ends = end.view(np.int64)
+    replace = renewal == "replace"
+    n = len(codes)
+    status = np.zeros(n, dtype=np.int8)
+    cols = {k: [] for k in ("code", "life", "life_start", "start", "stop", "failed", "mode", "open")}
+
+    def add(u, life, life_start, start, stop, failed, mode, is_open):
+        for k, v in zip(cols, (u, life, life_start, start, stop, failed, mode, is_open)):
+            cols[k].append(v)
+
+    i = 0
+    while i < n:
+        u = codes[i]
+        j = i
+        while j < n and codes[j] == u:
+            j += 1
+        first, stop = int(inst[u]), int(ends[u])
+        life, life_start, row_start, prev = 1, first, first, first
+        awaiting = seen_decommission = False
+        for k in range(i, j):
+            d, kind = dates[k], kinds[k]
+            if d > stop:
+                status[k] = 1
+                continue
+            if kind == "decommission":
+                if seen_decommission:
+                    status[k] = 2
+                else:
+                    seen_decommission = True
+                continue
+            repair_of_failure = kind == "replacement" and awaiting and d == prev
+            if d <= prev and not repair_of_failure:
+                status[k] = 3 if d == first and prev == first else 4
+                continue
+            if kind == "failure":
+                add(u, life, life_start, row_start, d, True, str(modes[k]), False)
+                if replace:
+                    life, life_start = life + 1, d
+                row_start, awaiting = d, True
+            elif awaiting:  # replacement right after a failure: downtime is not at risk
+                if not replace:
+                    life += 1
+                life_start, row_start, awaiting = d, d, False
+            else:  # planned renewal: the life ends as a suspension
+                add(u, life, life_start, row_start, d, False, "", False)
+                life, life_start, row_start = life + 1, d, d
+            prev = d
+        if row_start < stop:
+            add(u, life, life_start, row_start, stop, False, "", True)
+        i = j
+    seg = {
+        "code": np.asarray(cols["code"], dtype=np.int64),
+        "life": np.asarray(cols["life"], dtype=np.int64),
+        "life_start": np.asarray(cols["life_start"], dtype=np.int64).view("datetime64[ns]"),
+        "start": np.asarray(cols["start"], dtype=np.int64).view("datetime64[ns]"),
+        "stop": np.asarray(cols["stop"], dtype=np.int64).view("datetime64[ns]"),
+        "failed": np.asarray(cols["failed"], dtype=bool),
+        "mode": np.asarray(cols["mode"], dtype=object),
+        "open": np.asarray(cols["open"], dtype=bool),
+    }
+    return seg, status
+
+
+def _pieces(seg: dict, r_code: np.ndarray, r_date: np.ndarray, r_values: np.ndarray, register: pd.DataFrame,
+            unit_row: np.ndarray, ids: pd.Index, install: np.ndarray, decommissioned: np.ndarray,
+            settings: BuildSettings) -> pd.DataFrame:
+    """Cut segments at reading dates into life-table rows (one frame, unit order kept)."""
+    code = seg["code"]
+    obs_start = install[code]
+    if settings.records_start is not None:
+        obs_start = np.maximum(obs_start, np.datetime64(pd.Timestamp(settings.records_start).to_datetime64(), "ns"))
+    a = np.maximum(seg["start"], obs_start)
+    seen = seg["stop"] > a  # segments that ended before records began are not observed
+    seg = {k: v[seen] for k, v in seg.items()}
+    code, a, b = seg["code"], a[seen], seg["stop"]
+    n_r = len(r_code)
+    # One sortable key per (unit, date): unit code times the number of distinct dates plus the date's rank.
+    distinct_dates, rank = np.unique(np.concatenate([r_date, a, b]), return_inverse=True)
+    width = np.int64(len(distinct_dates) + 1)
+    r_key = r_code.astype(np.int64) * width + rank[:n_r]
+    a_key = code * width + rank[n_r:n_r + len(a)]
+    b_key = code * width + rank[n_r + len(a):]
+    lo = np.searchsorted(r_key, a_key, side="right")
+    hi = np.searchsorted(r_key, b_key, side="left")
+    first_reading = np.searchsorted(r_key, code * width, side="left")
+    has_readings = np.searchsorted(r_key, (code + 1) * width, side="left") > first_reading
+    cuts = hi - lo
+    per = cuts + 1
+    owner = np.repeat(np.arange(len(code)), per)
+    j = np.arange(int(per.sum())) - np.repeat(np.cumsum(per) - per, per)
+    lo_o, final = lo[owner], j == cuts[owner]
+    if n_r:
+        p = np.where(j == 0, a[owner], r_date[np.clip(lo_o + j - 1, 0, n_r - 1)])
+        q = np.where(final, b[owner], r_date[np.clip(lo_o + j, 0, n_r - 1)])
+    else:
+        p, q = a[owner], b[owner]
+    u = code[owner]
+    life_start = seg["life_start"][owner]
+    day = np.timedelta64(1, "D")
+    data = {
+        "unit_id": ids.to_numpy(dtype=object)[u],
+        "life": seg["life"][owner],
+        "entry_age": (p - life_start) / day,
+        "exit_age": (q - life_start) / day,
+        "failed": seg["failed"][owner] & final,
+        "mode": np.where(final, seg["mode"][owner], ""),
+        "in_service": seg["open"][owner] & final & ~decommissioned[u],
+        "install_date": install[u],
+        "entry_date": p,
+        "exit_date": q,
+    }
+    rows = unit_row[u]
+    for c in settings.register_columns:
+        column = register[c]
+        if isinstance(column.dtype, pd.CategoricalDtype) or column.dtype == object:
+            data[c] = np.asarray(column, dtype=object)[rows]
+        else:
+            data[c] = column.to_numpy()[rows]
+    if settings.reading_columns:
+        at = np.maximum(lo_o + j - 1, first_reading[owner])
+        got = has_readings[owner]
+        for i, c in enumerate(settings.reading_columns):
+            data[c] = np.where(got, r_values[np.clip(at, 0, max(n_r - 1, 0)), i] if n_r else np.nan, np.nan)
+    columns = ["unit_id", "life", "entry_age", "exit_age", "failed", "mode", "in_service",
+               "install_date", "entry_date", "exit_date", *settings.register_columns, *settings.reading_columns]
+    frame = pd.DataFrame({c: data[c] for c in columns}, columns=columns)
+    if frame.empty:
+        frame = frame.astype({c: object for c in columns})
+        frame["failed"] = frame["failed"].astype(bool)
+        frame["in_service"] = frame["in_service"].astype(bool)
+    return frame
 
 
 def build_from_intervals(rows: pd.DataFrame, settings: BuildSettings, *, dated: bool) -> BuildOutcome:
@@ -268,37 +434,39 @@ def build_from_intervals(rows: pd.DataFrame, settings: BuildSettings, *, dated: 
     frame = rows.copy()
     if dated and settings.backtest:
         later = (frame["entry_date"] >= settings.as_of).to_numpy()
-        for r in frame[later].to_dict("records"):
-            out.after_as_of.add(_key(r))
+        out.set_aside(_source(frame), frame.index.to_numpy()[later])
         frame = frame[~later].copy()
         cut = frame["exit_date"] > settings.as_of
         frame.loc[cut, "exit_date"] = settings.as_of
         frame.loc[cut, "exit_age"] = (settings.as_of - frame.loc[cut, "install_date"]) / DAY
         frame.loc[cut, "failed"] = False
         frame.loc[cut, "mode"] = ""
-    negative = frame["entry_age"] < 0
-    for r in frame[negative].to_dict("records"):
-        out.reject(r, "entry", r["entry_age"], "negative entry age")
+    src = _source(frame)
+    negative = (frame["entry_age"] < 0).to_numpy()
+    out.reject(src, frame.index.to_numpy()[negative], "entry", frame["entry_age"][negative].tolist(),
+               "negative entry age")
     frame = frame[~negative]
-    short = frame["exit_age"] <= frame["entry_age"]
-    for r in frame[short].to_dict("records"):
-        out.reject(r, "exit", r["exit_age"], "exit not after entry (zero or negative duration)")
+    short = (frame["exit_age"] <= frame["entry_age"]).to_numpy()
+    out.reject(src, frame.index.to_numpy()[short], "exit", frame["exit_age"][short].tolist(),
+               "exit not after entry (zero or negative duration)")
     frame = frame[~short]
     order = frame.sort_values(["unit_id", "life", "entry_age", "exit_age", "failed", "mode", "_source", "_line"],
                               kind="mergesort")
     keep = np.ones(len(order), dtype=bool)
     last_key, last_exit = None, -np.inf
-    for i, (uid, lf, entry, exit_) in enumerate(zip(order["unit_id"], order["life"],
-                                                     order["entry_age"], order["exit_age"])):
+    # Sequential: an overlapping interval is dropped and does not move the life's last exit.
+    for i, (uid, lf, entry, exit_) in enumerate(zip(order["unit_id"].tolist(), order["life"].tolist(),
+                                                     order["entry_age"].tolist(), order["exit_age"].tolist())):
         if (uid, lf) != last_key:
             last_key, last_exit = (uid, lf), -np.inf
         if entry < last_exit:
             keep[i] = False
-            out.reject(order.iloc[i].to_dict(), "entry", entry, "interval overlaps another interval of the same life")
             continue
         last_exit = exit_
+    out.reject(src, order.index.to_numpy()[~keep], "entry", order["entry_age"][~keep].tolist(),
+               "interval overlaps another interval of the same life")
     frame = order[keep].copy()
-    out.kept.update(zip(frame["_source"].astype(str), frame["_line"].astype(int)))
+    out.keep(src, frame.index.to_numpy())
     last = frame.groupby(["unit_id", "life"], sort=False)["exit_age"].transform("max") == frame["exit_age"]
     top_life = frame.groupby("unit_id", sort=False)["life"].transform("max") == frame["life"]
     in_service = last & top_life & ~frame["failed"].astype(bool)

@@ -4,6 +4,11 @@ Pure functions on pandas Series of ``str`` (empty cell = ``""``). Each returns
 the parsed values plus a boolean mask of cells that could not be parsed, so the
 caller can quarantine exactly those rows.
 
+Every parser works cell by cell, so each runs once per distinct text (the
+categories of a categorical column, or ``pandas.factorize``) and the results
+are spread back over the rows: exports repeat the same dates, kinds and
+readings many times.
+
 Dates without ``input.date_format`` accept ISO ``YYYY-MM-DD`` (or ``YYYY/MM/DD``,
 optionally followed by a time) and ``a/b/YYYY`` (``/``, ``.`` or ``-``). The
 order of ``a`` and ``b`` is settled once for all date columns of a run by
@@ -32,12 +37,47 @@ _FLAGS = {"0": False, "1": True, "true": True, "false": False}
 AGE_UNIT_DAYS = {"days": 1.0, "hours": 1.0 / 24.0, "weeks": 7.0, "months": 365.25 / 12.0, "years": 365.25}
 
 
+def distinct(values: pd.Series) -> tuple[np.ndarray, pd.Series]:
+    """``(codes, uniques)`` with ``values[i] == uniques[codes[i]]``; uniques is an object Series."""
+    if isinstance(values.dtype, pd.CategoricalDtype):
+        codes = values.cat.codes.to_numpy()
+        cats = values.cat.categories.to_numpy(dtype=object)
+        if (codes < 0).any():  # NaN cells get their own slot
+            codes = np.where(codes < 0, len(cats), codes)
+            cats = np.append(cats, np.array([np.nan], dtype=object))
+        return codes, pd.Series(cats, dtype=object)
+    codes, uniques = pd.factorize(values.to_numpy(dtype=object), use_na_sentinel=False)
+    return codes, pd.Series(np.asarray(uniques, dtype=object), dtype=object)
+
+
+def _spread(result: pd.Series, codes: np.ndarray, index) -> pd.Series:
+    return pd.Series(result.to_numpy()[codes], index=index, dtype=result.dtype)
+
+
+def map_text(values: pd.Series, fn) -> pd.Series:
+    """Apply ``fn`` (Series of text -> Series of text) once per distinct value;
+    the result keeps a categorical column categorical (else object)."""
+    codes, uniques = distinct(values)
+    mapped = fn(uniques).to_numpy(dtype=object)
+    if isinstance(values.dtype, pd.CategoricalDtype) and not pd.isna(mapped).any():
+        new_codes, new_uniques = pd.factorize(mapped, use_na_sentinel=False)
+        return pd.Series(pd.Categorical.from_codes(new_codes[codes], categories=new_uniques),
+                         index=values.index)
+    return pd.Series(mapped[codes], index=values.index, dtype=object)
+
+
 def parse_numbers(values: pd.Series, decimal: str = ".") -> tuple[pd.Series, np.ndarray]:
     """Numbers from text. Empty cells become NaN (not bad); returns (float64, bad mask).
 
     With ``decimal=","`` a comma is the decimal mark and a value holding both
     ``,`` and ``.`` is rejected (thousands separators are not guessed).
     """
+    codes, uniques = distinct(values)
+    numbers, bad = _parse_numbers(uniques, decimal)
+    return _spread(numbers, codes, values.index), bad[codes]
+
+
+def _parse_numbers(values: pd.Series, decimal: str) -> tuple[pd.Series, np.ndarray]:
     text = values.astype(str).str.strip()
     if decimal == ",":
         both = text.str.contains(",", regex=False) & text.str.contains(".", regex=False)
@@ -51,6 +91,12 @@ def parse_numbers(values: pd.Series, decimal: str = ".") -> tuple[pd.Series, np.
 
 def parse_flags(values: pd.Series) -> tuple[pd.Series, np.ndarray]:
     """Failed flags: exactly 0/1/true/false (any case). Returns (bool, bad mask)."""
+    codes, uniques = distinct(values)
+    flags, bad = _parse_flags(uniques)
+    return _spread(flags, codes, values.index), bad[codes]
+
+
+def _parse_flags(values: pd.Series) -> tuple[pd.Series, np.ndarray]:
     key = values.astype(str).str.strip().str.lower()
     bad = ~key.isin(list(_FLAGS)).to_numpy()
     return key.map(lambda k: _FLAGS.get(k, False)).astype(bool), bad
@@ -58,6 +104,11 @@ def parse_flags(values: pd.Series) -> tuple[pd.Series, np.ndarray]:
 
 def id_problems(values: pd.Series) -> pd.Series:
     """A reason per id cell ("" when fine): empty ids and spreadsheet-mangled ids."""
+    codes, uniques = distinct(values)
+    return _spread(_id_problems(uniques), codes, values.index)
+
+
+def _id_problems(values: pd.Series) -> pd.Series:
     text = values.astype(str).str.strip()
     reasons = pd.Series("", index=values.index, dtype=object)
     reasons[text == ""] = "missing unit id"
@@ -87,7 +138,13 @@ def day_first_from_values(samples: list[DateSample]) -> bool | None:
     """
     proof_day, proof_month, undecided = None, None, None
     for s in samples:
-        matches = s.values.astype(str).str.strip().str.extract(_NUMERIC_DATE)
+        codes, uniques = distinct(s.values)
+        # first row of each distinct value: the earliest row of a kind is the
+        # first row of the distinct value with the earliest first row
+        firsts = pd.Series(codes).drop_duplicates()  # in order of first appearance
+        rows = firsts.index.to_numpy()
+        texts = uniques.iloc[firsts.to_numpy()].reset_index(drop=True)
+        matches = texts.astype(str).str.strip().str.extract(_NUMERIC_DATE)
         if matches.empty:
             continue
         ok = matches[0].notna().to_numpy()
@@ -98,7 +155,7 @@ def day_first_from_values(samples: list[DateSample]) -> bool | None:
         for mask, kind in (((a > 12) & (b <= 12) & ok, "day"), ((b > 12) & (a <= 12) & ok, "month"),
                            ((a <= 12) & (b <= 12) & ok, "both")):
             if mask.any():
-                i = int(np.flatnonzero(mask)[0])
+                i = int(rows[int(np.flatnonzero(mask)[0])])
                 where = (s.source, int(s.lines.iloc[i]), s.column, str(s.values.iloc[i]).strip())
                 if kind == "day" and proof_day is None:
                     proof_day = where
@@ -131,6 +188,12 @@ def day_first_from_values(samples: list[DateSample]) -> bool | None:
 def parse_dates(values: pd.Series, *, date_format: str | None = None,
                 day_first: bool | None = None) -> tuple[pd.Series, np.ndarray]:
     """Dates from text; empty cells are NaT (not bad). Returns (datetime64[ns], bad mask)."""
+    codes, uniques = distinct(values)
+    dates, bad = _parse_dates(uniques, date_format, day_first)
+    return _spread(dates, codes, values.index), bad[codes]
+
+
+def _parse_dates(values: pd.Series, date_format: str | None, day_first: bool | None) -> tuple[pd.Series, np.ndarray]:
     text = values.astype(str).str.strip()
     empty = (text == "").to_numpy()
     if date_format is not None:

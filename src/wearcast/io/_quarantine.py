@@ -1,8 +1,12 @@
 """The quarantine: every rejected export row, once, with the first reason found.
 
-A row is identified by ``(source_file, line)``. :class:`Quarantine` refuses to
-record a row twice, so row accounting (rows read = kept + quarantined + after
-as_of) can be checked exactly.
+A row is identified by its file name (``_source``) and its position in that
+file's :class:`~wearcast.io._readers.RawTable` (the frame's index label). The
+quarantine keeps one boolean mask per file plus, for rejected rows only, the
+column, value and reason; the rejected rows' original text is rebuilt from the
+raw table when :meth:`Quarantine.frame` is called, so nothing is held per kept
+row. A row rejected twice keeps its first reason, so row accounting (rows read
+= kept + quarantined + after as_of) can be checked exactly.
 """
 
 from __future__ import annotations
@@ -19,24 +23,37 @@ QUARANTINE_COLUMNS = ("source_file", "line", "column", "value", "reason", "origi
 
 
 class Quarantine:
-    """Collects rejected rows; ``reject`` returns the rows it newly recorded."""
+    """Collects rejected rows; ``reject`` returns the rows it was asked to reject.
+
+    Call :meth:`track` once per file read before rejecting its rows.
+    """
 
     def __init__(self) -> None:
-        self._records: list[dict] = []
-        self._keys: set[tuple[str, int]] = set()
+        self._tables: dict[str, object] = {}  # source -> RawTable
+        self._taken: dict[str, np.ndarray] = {}  # source -> bool per raw row
+        self._chunks: list[tuple[str, np.ndarray, np.ndarray, np.ndarray, np.ndarray]] = []
+
+    def track(self, table) -> None:
+        """Register a :class:`~wearcast.io._readers.RawTable` (rows are its frame positions)."""
+        self._tables[table.name] = table
+        self._taken[table.name] = np.zeros(len(table.frame), dtype=bool)
 
     def __len__(self) -> int:
-        return len(self._records)
+        return int(sum(int(t.sum()) for t in self._taken.values()))
 
-    def keys(self) -> set[tuple[str, int]]:
-        return set(self._keys)
+    def taken(self, source: str) -> np.ndarray:
+        """Boolean mask over the raw rows of ``source``: True where rejected."""
+        return self._taken[source]
 
-    def has(self, source: str, line: int) -> bool:
-        return (source, int(line)) in self._keys
+    def rejected(self, rows: pd.DataFrame) -> np.ndarray:
+        """Mask aligned with ``rows`` (a frame of one tracked file): True where already rejected."""
+        if not len(rows):
+            return np.zeros(0, dtype=bool)
+        return self._taken[_source_of(rows)][rows.index.to_numpy()]
 
     def reject(self, rows: pd.DataFrame, mask, column: str | pd.Series, reason: str | pd.Series,
                values: pd.Series | None = None) -> np.ndarray:
-        """Quarantine ``rows[mask]``; returns a boolean mask (aligned with rows) of rejected rows.
+        """Quarantine ``rows[mask]``; returns ``mask`` as a boolean array (aligned with rows).
 
         ``column``/``reason`` may be one string or a Series aligned with ``rows``;
         ``values`` defaults to the cell ``rows[column]`` (or "" when absent).
@@ -46,38 +63,78 @@ class Quarantine:
         picked = np.flatnonzero(mask)
         if not len(picked):
             return mask
-        sources = rows["_source"].to_numpy()[picked]
-        lines = rows["_line"].to_numpy()[picked]
-        raws = rows["_raw"].to_numpy()[picked]
-        cols = [column] * len(picked) if isinstance(column, str) else [str(c) for c in column.to_numpy()[picked]]
-        whys = [reason] * len(picked) if isinstance(reason, str) else [str(r) for r in reason.to_numpy()[picked]]
-        if values is not None:
-            cells = [str(v) for v in values.to_numpy()[picked]]
-        elif isinstance(column, str) and column in rows:
-            cells = [str(v) for v in rows[column].to_numpy()[picked]]
+        if isinstance(column, str):
+            cols = column
         else:
-            cells = [str(rows[c].iloc[i]) if c in rows else "" for c, i in zip(cols, picked)]
-        for source, line, raw, col, why, value in zip(sources, lines, raws, cols, whys, cells):
-            self.add(str(source), int(line), col, value, why, str(raw))
+            cols = np.array([str(c) for c in column.to_numpy()[picked]], dtype=object)
+        whys = reason if isinstance(reason, str) else np.array([str(r) for r in reason.to_numpy()[picked]],
+                                                               dtype=object)
+        if values is not None:
+            cells = values.to_numpy()[picked]
+        elif isinstance(column, str) and column in rows:
+            cells = rows[column].to_numpy()[picked]
+        else:
+            cells = np.array([rows[c].iloc[i] if c in rows else "" for c, i in zip(cols, picked)], dtype=object)
+        self.reject_index(_source_of(rows), rows.index.to_numpy()[picked], cols, cells, whys)
         return mask
 
-    def add(self, source: str, line: int, column: str, value: str, reason: str, original_row: str) -> bool:
-        """Record one row; False when it was already recorded (it keeps its first reason)."""
-        key = (source, int(line))
-        if key in self._keys:
-            return False
-        self._keys.add(key)
-        self._records.append({"source_file": source, "line": key[1], "column": column, "value": value,
-                              "reason": reason, "original_row": original_row})
-        return True
+    def reject_index(self, source: str, index: np.ndarray, column, values, reason) -> None:
+        """Quarantine raw rows ``index`` (positions) of ``source``; ``column``, ``values``
+        and ``reason`` are one value or arrays aligned with ``index``."""
+        index = np.asarray(index, dtype=np.int64)
+        n = len(index)
+        if not n:
+            return
+        taken = self._taken[source]
+        # First reason wins, also among repeats inside this call.
+        new = ~taken[index]
+        _, first = np.unique(index, return_index=True)
+        once = np.zeros(n, dtype=bool)
+        once[first] = True
+        new &= once
+        if not new.any():
+            return
+        taken[index[new]] = True
+
+        def pick(v):
+            arr = np.full(n, v, dtype=object) if isinstance(v, str) else np.asarray(v, dtype=object)
+            return arr[new]
+
+        cells = np.array([str(v) for v in np.asarray(values, dtype=object)[new]], dtype=object)
+        self._chunks.append((source, index[new], pick(column), cells, pick(reason)))
 
     def frame(self) -> pd.DataFrame:
         """The rejected rows sorted by file and line (columns QUARANTINE_COLUMNS)."""
-        if not self._records:
+        if not self._chunks:
             return pd.DataFrame({c: pd.Series(dtype="int64" if c == "line" else object)
                                  for c in QUARANTINE_COLUMNS})
-        out = pd.DataFrame(self._records, columns=list(QUARANTINE_COLUMNS))
+        parts = []
+        for source, index, cols, cells, whys in self._chunks:
+            table = self._tables[source]
+            lines = table.frame["_line"].to_numpy()[index]
+            parts.append(pd.DataFrame({
+                "source_file": np.full(len(index), source, dtype=object),
+                "line": lines.astype(np.int64),
+                "column": cols, "value": cells, "reason": whys,
+                "original_row": original_rows(table, index),
+            }))
+        out = pd.concat(parts, ignore_index=True)
         return out.sort_values(["source_file", "line"], kind="mergesort").reset_index(drop=True)
+
+
+def original_rows(table, index: np.ndarray) -> np.ndarray:
+    """The text of raw rows ``index`` as the file's delimiter joins them (object array)."""
+    from wearcast.io._readers import join_fields
+
+    cells = [table.frame[c].to_numpy()[index] for c in table.columns]
+    sep = getattr(table, "delimiter", ",")
+    return np.array([join_fields(row, sep) for row in zip(*cells)], dtype=object)
+
+
+def _source_of(rows: pd.DataFrame) -> str:
+    sources = rows["_source"]
+    first = str(sources.iloc[0])
+    return first
 
 
 def by_reason(quarantine: pd.DataFrame) -> dict[str, int]:

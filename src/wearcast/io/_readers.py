@@ -7,8 +7,14 @@ three bookkeeping columns besides the export's own:
 * ``_source``: the file name (no folder), for messages and the quarantine file;
 * ``_line``: CSV physical line number of the row's first line (header = line 1),
   Excel sheet row number, or Parquet 1-based row number (no header line);
-* ``_raw``: the row's cells joined by the file's delimiter (the quarantine's
-  ``original_row``).
+The quarantine's ``original_row`` is rebuilt from the cells of rejected rows
+only (:func:`join_fields` with ``RawTable.delimiter``), so no text is kept per row.
+``_raw`` stays a reserved column name.
+
+With ``compact=True`` the export's columns are pandas categoricals of ``str``
+(one code per cell), which keeps a million-unit export within memory; CSV files
+without quote characters are then split by pandas' C parser, with line numbers,
+blank lines and field counts worked out on the raw bytes with numpy.
 
 Rows whose field count differs from the header's carry a reason in
 ``_malformed`` (``""`` otherwise) so validation can quarantine them.
@@ -21,6 +27,7 @@ import io
 from dataclasses import dataclass
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from wearcast.exceptions import DataError, InputMissingError
@@ -36,6 +43,7 @@ class RawTable:
     path: Path
     frame: pd.DataFrame
     columns: tuple[str, ...]  # the export's own column names, in file order
+    delimiter: str = ","  # joins a row's cells into the quarantine's original_row
 
     @property
     def name(self) -> str:
@@ -48,11 +56,13 @@ def read_export_file(
     delimiter: str | None = None,
     encoding: str = "utf-8",
     sheet: str | None = None,
+    compact: bool = False,
 ) -> RawTable:
     """Read one export file by its suffix (.csv/.txt, .xlsx/.xlsm, .parquet).
 
     Raises :class:`InputMissingError` when the file is missing or unreadable and
     :class:`DataError` when its header is unusable (empty, duplicate names).
+    ``compact``: export columns as categoricals of ``str`` (same cells, less memory).
     """
     path = Path(path)
     if not path.is_file():
@@ -62,13 +72,23 @@ def read_export_file(
         )
     suffix = path.suffix.lower()
     if suffix in (".xlsx", ".xlsm"):
-        return _read_excel(path, sheet)
-    if suffix in (".parquet", ".pq"):
-        return _read_parquet(path)
-    return _read_csv(path, delimiter, encoding)
+        raw = _read_excel(path, sheet)
+    elif suffix in (".parquet", ".pq"):
+        raw = _read_parquet(path)
+    else:
+        raw = _read_csv(path, delimiter, encoding, compact)
+    return _compacted(raw) if compact else raw
 
 
-def _read_csv(path: Path, delimiter: str | None, encoding: str) -> RawTable:
+def _compacted(raw: RawTable) -> RawTable:
+    frame = raw.frame
+    for c in raw.columns:
+        if not isinstance(frame[c].dtype, pd.CategoricalDtype):
+            frame[c] = frame[c].astype("category")
+    return raw
+
+
+def _read_csv(path: Path, delimiter: str | None, encoding: str, compact: bool = False) -> RawTable:
     try:
         data = path.read_bytes()
     except OSError as exc:
@@ -84,9 +104,13 @@ def _read_csv(path: Path, delimiter: str | None, encoding: str) -> RawTable:
         ) from exc
     text = text.lstrip("\ufeff")  # a BOM left by a non-UTF-8 codec
     sep = delimiter or sniff_delimiter(text)
+    del data
+    fast = _read_csv_fast(path, text, sep, compact)
+    if fast is not None:
+        return fast
     reader = csv.reader(io.StringIO(text, newline=""), delimiter=sep)
     header: list[str] | None = None
-    records, lines, raws, malformed = [], [], [], []
+    records, lines, malformed = [], [], []
     previous_end = 0
     for fields in reader:
         start = previous_end + 1
@@ -103,18 +127,17 @@ def _read_csv(path: Path, delimiter: str | None, encoding: str) -> RawTable:
             fields = (fields + [""] * len(header))[: len(header)]
         records.append(fields)
         lines.append(start)
-        raws.append(_join(fields, sep))
         malformed.append(problem)
     if header is None:
         raise DataError(f"{path.name}: the file is empty; expected a header line with column names.")
     _check_header(path, header, header_line)
     frame = pd.DataFrame(records, columns=header, dtype=object)
-    return _finish(path, frame, header, lines, raws, malformed)
+    return _finish(path, frame, header, lines, malformed, sep)
 
 
 def sniff_delimiter(text: str) -> str:
     """Pick the delimiter among , ; tab | from the first lines (default ``,``)."""
-    sample = "\n".join(text.splitlines()[:20])
+    sample = "\n".join(_first_lines(text, 20))
     try:
         return csv.Sniffer().sniff(sample, delimiters=_DELIMITERS).delimiter
     except csv.Error:
@@ -144,8 +167,7 @@ def _read_excel(path: Path, sheet: str | None) -> RawTable:
     body = grid.iloc[rows[1:], : len(header)]
     frame = pd.DataFrame(body.to_numpy(), columns=header, dtype=object)
     lines = [i + 1 for i in rows[1:]]  # sheet rows are 1-based
-    raws = [_join(r, ",") for r in frame.itertuples(index=False)]
-    return _finish(path, frame, header, lines, raws, [""] * len(frame))
+    return _finish(path, frame, header, lines, [""] * len(frame), ",")
 
 
 def _read_parquet(path: Path) -> RawTable:
@@ -164,8 +186,7 @@ def _read_parquet(path: Path) -> RawTable:
             text = values.astype(object).map(lambda v: "" if v is None or (isinstance(v, float) and v != v) else str(v))
         cols[name] = text.fillna("").astype(str).to_numpy()
     frame = pd.DataFrame(cols, columns=header, dtype=object)
-    raws = [_join(r, ",") for r in frame.itertuples(index=False)]
-    return _finish(path, frame, header, list(range(1, len(frame) + 1)), raws, [""] * len(frame))
+    return _finish(path, frame, header, list(range(1, len(frame) + 1)), [""] * len(frame), ",")
 
 
 def _check_header(path: Path, header: list[str], line: int) -> None:
@@ -182,16 +203,96 @@ def _check_header(path: Path, header: list[str], line: int) -> None:
         seen.add(h)
 
 
-def _finish(path, frame, header, lines, raws, malformed) -> RawTable:
-    frame = frame.fillna("").astype(str) if len(frame) else frame.astype(object)
+def _finish(path, frame, header, lines, malformed, sep: str) -> RawTable:
+    if not any(isinstance(t, pd.CategoricalDtype) for t in frame.dtypes):
+        frame = frame.fillna("").astype(str) if len(frame) else frame.astype(object)
     frame["_source"] = path.name
-    frame["_line"] = pd.Series(lines, dtype="int64", index=frame.index)
-    frame["_raw"] = pd.Series(raws, dtype=object, index=frame.index)
-    frame["_malformed"] = pd.Series(malformed, dtype=object, index=frame.index)
-    return RawTable(path=path, frame=frame.reset_index(drop=True), columns=tuple(header))
+    frame["_line"] = pd.Series(np.asarray(lines, dtype="int64"), index=frame.index)
+    frame["_malformed"] = pd.Series(np.asarray(malformed, dtype=object), index=frame.index)
+    return RawTable(path=path, frame=frame.reset_index(drop=True), columns=tuple(header), delimiter=sep)
 
 
-def _join(fields, sep: str) -> str:
+def _first_lines(text: str, n: int) -> list[str]:
+    """``text.splitlines()[:n]`` without splitting the whole text."""
+    size = 1 << 16
+    while True:
+        lines = text[:size].splitlines()
+        if len(lines) > n + 1 or size >= len(text):
+            return lines[:n]
+        size *= 4
+
+
+# Bytes that str.strip() removes in ASCII; bytes >= 0x80 may start Unicode whitespace.
+_ASCII_SPACE = b" \t\n\r\x0b\x0c\x1c\x1d\x1e\x1f"
+
+
+def _read_csv_fast(path: Path, text: str, sep: str, compact: bool) -> RawTable | None:
+    """Split a CSV without quote characters with pandas' C parser; None when the
+    file needs the csv module (quotes, NUL, lone carriage returns, odd delimiter).
+
+    Gives the same cells, line numbers, blank-line skipping and field-count
+    problems as the csv-module path: without quotes every physical line is one
+    record and its fields are the pieces between delimiters.
+    """
+    if len(sep) != 1 or ord(sep) >= 128 or sep in "\r\n\"" or '"' in text or "\0" in text:
+        return None
+    body = text.encode("utf-8")
+    buf = np.frombuffer(body, dtype=np.uint8)
+    if not len(buf):
+        return None
+    if "\r" in text:
+        cr = np.flatnonzero(buf == 13)
+        if (cr + 1 >= len(buf)).any() or (buf[np.minimum(cr + 1, len(buf) - 1)] != 10).any():
+            return None  # lone \r line ends: leave them to the csv module
+    newlines = np.flatnonzero(buf == 10)
+    starts = np.concatenate(([0], newlines + 1))
+    if starts[-1] >= len(buf):
+        starts = starts[:-1]  # the text ends with a line break
+    n_lines = len(starts)
+    soft = np.zeros(256, dtype=bool)
+    soft[list(_ASCII_SPACE)] = True
+    soft[ord(sep)] = True
+    soft[128:] = True
+    has_solid = np.logical_or.reduceat(~soft[buf], starts)
+    has_high = np.logical_or.reduceat(buf >= 128, starts)
+    n_fields = np.add.reduceat(buf == ord(sep), starts, dtype=np.int64) + 1
+    blank = ~has_solid & ~has_high
+    for i in np.flatnonzero(~has_solid & has_high):  # only Unicode spaces? decide as the csv path does
+        end = newlines[i] if i < len(newlines) else len(buf)
+        line = body[starts[i]:end].decode("utf-8").rstrip("\r\n")
+        blank[i] = all(f.strip() == "" for f in line.split(sep))
+    filled = np.flatnonzero(~blank)
+    if not len(filled):
+        return None  # empty file: the csv path raises the message
+    head = int(filled[0])
+    end = newlines[head] if head < len(newlines) else len(buf)
+    header = [f.strip() for f in body[starts[head]:end].decode("utf-8").rstrip("\r\n").split(sep)]
+    _check_header(path, header, head + 1)
+    width = len(header)
+    grid = pd.read_csv(io.BytesIO(body), sep=sep, header=None, names=list(range(int(n_fields.max()))),
+                       dtype="category" if compact else object, quoting=csv.QUOTE_NONE, na_filter=False,
+                       skip_blank_lines=False, encoding="utf-8", engine="c", index_col=False)
+    del body, buf
+    if len(grid) != n_lines:
+        return None
+    rows = filled[1:]
+    counts = n_fields[rows]
+    frame = pd.DataFrame({name: grid[i].iloc[rows].reset_index(drop=True) for i, name in enumerate(header)})
+    if compact:
+        for name in header:
+            col = frame[name]
+            if col.isna().any():  # cannot happen with na_filter=False; kept for safety
+                frame[name] = col.cat.add_categories([""]).fillna("") if "" not in col.cat.categories \
+                    else col.fillna("")
+            frame[name] = frame[name].cat.remove_unused_categories()
+    malformed = np.full(len(rows), "", dtype=object)
+    odd = np.flatnonzero(counts != width)
+    malformed[odd] = [f"row has {int(c)} fields, the header has {width}" for c in counts[odd]]
+    return _finish(path, frame, header, rows + 1, malformed, sep)
+
+
+def join_fields(fields, sep: str) -> str:
+    """A row's cells as the csv module writes them with delimiter ``sep`` (no line end)."""
     out = io.StringIO()
     csv.writer(out, delimiter=sep, lineterminator="").writerow(list(fields))
     return out.getvalue()

@@ -49,7 +49,8 @@ def _read(config: Config, key: str, required: bool = True) -> RawTable | None:
             raise ConfigError(f"{config.source}: input.{key} is not set; shape {inp.shape!r} needs it. "
                               f"Add {key} = \"path/to/file.csv\" under [input].")
         return None
-    return read_export_file(config.path(rel), delimiter=inp.delimiter, encoding=inp.encoding, sheet=inp.sheet)
+    return read_export_file(config.path(rel), delimiter=inp.delimiter, encoding=inp.encoding, sheet=inp.sheet,
+                            compact=True)
 
 
 def _require(table: RawTable, wanted: dict[str, str] | list[tuple[str, str]]) -> None:
@@ -77,14 +78,12 @@ def _check_common(frame: pd.DataFrame, q: Quarantine) -> np.ndarray:
     q.reject(frame, frame["_malformed"] != "", "", frame["_malformed"], values=pd.Series("", index=frame.index))
     reasons = _parse.id_problems(frame["unit_id"])
     q.reject(frame, (reasons != "").to_numpy(), "unit_id", reasons)
-    frame["unit_id"] = frame["unit_id"].astype(str).str.strip()
+    frame["unit_id"] = _parse.map_text(frame["unit_id"], lambda t: t.astype(str).str.strip())
     return ~_rejected(frame, q)
 
 
 def _rejected(frame: pd.DataFrame, q: Quarantine) -> np.ndarray:
-    keys = q.keys()
-    return np.fromiter(((s, int(l)) in keys for s, l in zip(frame["_source"], frame["_line"])),
-                       dtype=bool, count=len(frame))
+    return q.rejected(frame)
 
 
 def _dates(frame: pd.DataFrame, col: str, q: Quarantine, config: Config, day_first, *, required: bool) -> None:
@@ -122,17 +121,15 @@ def _latest_date(*series: pd.Series) -> pd.Timestamp:
     return max(dates)
 
 
-def _merge(outcome: BuildOutcome, q: Quarantine, raws: dict[tuple[str, int], str]) -> None:
-    for source, line, column, value, reason in outcome.rejected:
-        q.add(source, line, column, value, reason, raws[(source, line)])
+def _merge(outcome: BuildOutcome, q: Quarantine) -> None:
+    for source, index, column, values, reason in outcome.rejected:
+        q.reject_index(source, index, column, values, reason)
 
 
-def _raw_index(*tables: RawTable | None) -> dict[tuple[str, int], str]:
-    out = {}
+def _track(q: Quarantine, *tables: RawTable | None) -> None:
     for t in tables:
         if t is not None:
-            out.update(zip(zip(t.frame["_source"], t.frame["_line"].astype(int)), t.frame["_raw"]))
-    return out
+            q.track(t)
 
 
 # -- register + log ---------------------------------------------------------------
@@ -154,6 +151,7 @@ def _load_register_log(config: Config, as_of_override) -> Loaded:
     register_cols = tuple(dict.fromkeys((*static_cols, *fleet.group_by)))
 
     q = Quarantine()
+    _track(q, register, events, readings)
     reg = _rename(register, {"unit_id": cols.unit_id, "install_date": cols.install_date,
                              "decommission_date": cols.decommission_date})
     ev = _rename(events, {"unit_id": cols.unit_id, "event_date": cols.event_date,
@@ -177,7 +175,8 @@ def _load_register_log(config: Config, as_of_override) -> Loaded:
     vocab = {k.strip().lower(): "failure" for k in fleet.failure_kinds}
     vocab |= {k.strip().lower(): "replacement" for k in fleet.replacement_kinds}
     vocab |= {k.strip().lower(): "decommission" for k in fleet.decommission_kinds}
-    kinds = ev["event_kind"].astype(str).str.strip().str.lower().map(vocab)
+    kinds = _parse.map_text(ev["event_kind"], lambda t: t.astype(str).str.strip().str.lower().map(vocab))
+    kinds = kinds.astype(object).where(kinds.notna(), np.nan)
     q.reject(ev, kinds.isna().to_numpy(), "event_kind",
              "unknown event kind (add it to fleet.failure_kinds, replacement_kinds or decommission_kinds)")
     ev["event_kind"] = kinds.fillna("")
@@ -213,9 +212,9 @@ def _load_register_log(config: Config, as_of_override) -> Loaded:
         records_start=None if fleet.records_start is None else pd.Timestamp(fleet.records_start),
         reading_columns=reading_cols, register_columns=register_cols)
     outcome = build_register_log(reg_ok, ev_ok, rd_ok, settings)
-    _merge(outcome, q, _raw_index(register, events, readings))
+    _merge(outcome, q)
     rows_read = sum(len(t.frame) for t in (register, events, readings) if t is not None)
-    _account(rows_read, outcome, q)
+    _account([t for t in (register, events, readings) if t is not None], outcome, q)
     return _finish(config, outcome, q, rows_read, as_of, reading_cols + static_cols)
 
 
@@ -230,9 +229,13 @@ def _load_life_table(config: Config, as_of_override) -> Loaded:
         raise ConfigError(f"{config.source}: input.age_unit {inp.age_unit!r} is not one of "
                           f"{', '.join(_parse.AGE_UNIT_DAYS)}.")
     q = Quarantine()
+    _track(q, table)
     f = _rename(table, {"unit_id": cols.unit_id, "entry": cols.entry, "exit": cols.exit, "failed": cols.failed,
                         "mode": cols.failure_mode, "install_date": cols.install_date, "life": cols.life})
     _check_common(f, q)
+    for c in f.columns:  # life tables are walked row by row below: plain text columns
+        if isinstance(f[c].dtype, pd.CategoricalDtype):
+            f[c] = f[c].astype(object)
     dated = "install_date" in f and _looks_dated(f["exit"], inp.decimal)
     if "entry" not in f:  # no entry column: every life is observed from age 0
         f["entry"] = f["install_date"] if dated else "0"
@@ -282,8 +285,8 @@ def _load_life_table(config: Config, as_of_override) -> Loaded:
     if dated:
         keep += ["install_date", "entry_date", "exit_date"]
     outcome = build_from_intervals(ok[keep], settings, dated=dated)
-    _merge(outcome, q, _raw_index(table))
-    _account(len(table.frame), outcome, q)
+    _merge(outcome, q)
+    _account([table], outcome, q)
     return _finish(config, outcome, q, len(table.frame), as_of, tuple(fleet.covariates))
 
 
@@ -298,15 +301,22 @@ def _looks_dated(values: pd.Series, decimal: str) -> bool:
 
 # -- shared ending -------------------------------------------------------------------
 
-def _account(rows_read: int, outcome: BuildOutcome, q: Quarantine) -> None:
+def _account(tables: list[RawTable], outcome: BuildOutcome, q: Quarantine) -> None:
     """Every row read is exactly one of kept, quarantined, after as_of."""
-    rejected = q.keys()
-    overlaps = (outcome.kept & rejected) | (outcome.kept & outcome.after_as_of) | (rejected & outcome.after_as_of)
-    total = len(outcome.kept) + len(rejected) + len(outcome.after_as_of)
-    if overlaps or total != rows_read:
+    problems = []
+    for t in tables:
+        n = len(t.frame)
+        count = q.taken(t.name).astype(np.int64)
+        for source, index in (*outcome.kept, *outcome.after_as_of):
+            if source == t.name:
+                count += np.bincount(index, minlength=n)[:n]
+        lines = t.frame["_line"].to_numpy()
+        problems += [(t.name, int(line), int(c)) for line, c in zip(lines[count != 1][:3], count[count != 1][:3])]
+    if problems:
+        rows_read = sum(len(t.frame) for t in tables)
         raise RuntimeError(  # a bug in wearcast, not in the export
-            f"row accounting failed: read {rows_read}, kept {len(outcome.kept)}, quarantined {len(rejected)}, "
-            f"after as_of {len(outcome.after_as_of)}, counted twice {sorted(overlaps)[:3]}. Please report this."
+            f"row accounting failed: read {rows_read}, kept {outcome.n_kept}, quarantined {len(q)}, "
+            f"after as_of {outcome.n_after_as_of}, (file, line, times counted) {problems[:3]}. Please report this."
         )
 
 
@@ -322,8 +332,8 @@ def _finish(config: Config, outcome: BuildOutcome, q: Quarantine, rows_read: int
         frame = frame.sort_values(sort, kind="mergesort").reset_index(drop=True)
         table = LifeTable.from_frame(frame, cov, fleet.categorical, as_of=as_of, source=config.source,
                                      meta={"renewal": fleet.renewal, "group_by": list(fleet.group_by)})
-    return Loaded(table=table, quarantine=q, rows_read=rows_read, rows_kept=len(outcome.kept),
-                  rows_after_as_of=len(outcome.after_as_of), as_of=as_of)
+    return Loaded(table=table, quarantine=q, rows_read=rows_read, rows_kept=outcome.n_kept,
+                  rows_after_as_of=outcome.n_after_as_of, as_of=as_of)
 
 
 def load(config: Config, as_of: dt.date | None = None) -> Loaded:
