@@ -123,3 +123,33 @@ def test_backtest_needs_dates(tmp_path):
         tmp_path / "lives.csv", index=False)
     with pytest.raises(ConfigError, match="needs calendar dates"):
         load_export(_config(tmp_path), as_of=dt.date(2020, 1, 1))
+
+
+def test_bootstrap_units_matches_a_plain_loop_over_draws():
+    # Reference: the definition written as a loop (draw units with replacement, copy
+    # each drawn unit's rows in order, label the j-th copy "<id>#<j>").
+    import numpy as np
+    import pandas as pd
+
+    from wearcast.lifetable import LifeTable
+
+    rng = np.random.default_rng(4)
+    n_rows = rng.integers(1, 5, size=30)
+    ids = np.repeat([f"U{i:03d}" for i in range(30)], n_rows)
+    starts = np.concatenate([np.arange(k) * 10.0 for k in n_rows])
+    frame = pd.DataFrame({"unit_id": ids, "entry_age": starts, "exit_age": starts + 10.0, "failed": False,
+                          "x": np.arange(len(ids), dtype=float)})
+    table = LifeTable.from_frame(frame.sample(frac=1.0, random_state=1), ["x"])
+    got = table.bootstrap_units(np.random.default_rng(11)).frame
+
+    codes = table.unit_codes()
+    draws = np.sort(np.random.default_rng(11).integers(0, codes.max() + 1, size=codes.max() + 1))
+    pieces, seen = [], {}
+    for u in draws:
+        rows = table.frame.iloc[np.flatnonzero(codes == u)].copy()
+        j = seen.get(u, 0)
+        seen[u] = j + 1
+        rows["unit_id"] = rows["unit_id"] + f"#{j}"
+        pieces.append(rows)
+    expected = pd.concat(pieces, ignore_index=True)
+    pd.testing.assert_frame_equal(got.reset_index(drop=True), expected)

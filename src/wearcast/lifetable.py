@@ -244,20 +244,20 @@ class LifeTable:
         """
         codes = self.unit_codes()
         n_units = codes.max() + 1 if len(codes) else 0
-        draws = rng.integers(0, n_units, size=n_units)
+        draws = np.sort(rng.integers(0, n_units, size=n_units))
         order = np.argsort(codes, kind="stable")
         starts = np.searchsorted(codes[order], np.arange(n_units + 1))
-        pieces, labels = [], []
-        copy_number = np.zeros(n_units, dtype=np.int64)
-        for u in np.sort(draws):
-            rows = order[starts[u]:starts[u + 1]]
-            pieces.append(rows)
-            labels.append(np.full(len(rows), copy_number[u]))
-            copy_number[u] += 1
-        rows = np.concatenate(pieces) if pieces else np.array([], dtype=np.int64)
-        copy = np.concatenate(labels) if labels else np.array([], dtype=np.int64)
+        lengths = starts[draws + 1] - starts[draws]
+        # copy number of each draw: its position among equal draws (draws are sorted)
+        copy_of_draw = np.arange(len(draws)) - np.searchsorted(draws, draws, side="left")
+        offsets = np.repeat(np.cumsum(lengths) - lengths, lengths)
+        within = np.arange(int(lengths.sum())) - offsets
+        rows = order[np.repeat(starts[draws], lengths) + within]
+        # one label per draw, then repeated over its rows (string work per unit, not per row)
+        first_row = self.frame["unit_id"].to_numpy()[order[starts[draws]]].astype(str)
+        labels = pd.Series(first_row).str.cat(pd.Series(copy_of_draw.astype(str)), sep="#").to_numpy()
         frame = self.frame.iloc[rows].reset_index(drop=True)
-        frame["unit_id"] = frame["unit_id"].to_numpy().astype(str) + "#" + copy.astype(str)
+        frame["unit_id"] = np.repeat(labels, lengths)
         return LifeTable(frame, self.covariates, self.categorical, self.as_of, dict(self.meta))
 
     def in_service(self) -> "LifeTable":
