@@ -202,4 +202,14 @@ def describe_fit(outcome: FitOutcome) -> list[str]:
     cols = [c for c in ("candidate", "c_mean", "c_se", "calibration_ratio", "eligible", "within_1se")
             if c in outcome.choice.candidates.reset_index(names="candidate").columns]
     table = outcome.choice.candidates.reset_index(names="candidate").loc[:, cols]
-    return [format_table(table).rstrip(), f"choice: {outcome.choice.reason}"]
+    lines = ["candidates (unit-grouped cross-validation, truncation-aware C):", format_table(table).rstrip(),
+             f"choice: {outcome.choice.reason}"]
+    comp = outcome.comparison
+    shown = [c for c in comp.columns if c == "model" or (c.startswith(("c_", "brier_integrated"))
+             and not c.endswith(("_vs_cox_low", "_vs_cox_high")))]
+    lines += ["comparison with the Cox baseline (95 % intervals in comparison.csv):", format_table(comp[shown]).rstrip()]
+    tau = comp.attrs.get("tau_days")
+    if tau is not None:
+        lines.append(f"Uno's C counts failures before age {tau:g} days (tau). The IPCW metrics (Uno's C, AUC, "
+                     "Brier score) assume no delayed entry; read them beside the truncation-aware C.")
+    return lines

@@ -47,5 +47,9 @@ def command(config: Path, as_of: dt.datetime, horizon: str, every: str | None, o
                           every_months=parse_months(every) if every else None, origins=origins,
                           top_k=top_k or cfg.ranking.top_k, seed=cfg.model.seed)
     write_backtest(result, out_dir)
+    from wearcast.report import build_report, report_inputs_from_run_folder
+
+    report = build_report(report_inputs_from_run_folder(out_dir, title="Backtest of failure-risk lists"), out_dir)
     click.echo(format_table(result.summary).rstrip())
+    click.echo(f"report: {report['report']}")
     click.echo(f"outputs are in {out_dir}")

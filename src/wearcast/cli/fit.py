@@ -15,7 +15,7 @@ from wearcast.cli._common import command_help, config_argument, library_call, lo
         "Check the export, score the candidate models (Cox, boosted trees of depth 1-3, "
         "bagged trees and a survival forest) by unit-grouped cross-validation, choose one by "
         "the one-standard-error rule and save every fitted model as a bundle. Writes "
-        "metrics.json, comparison.csv and models/ into the output folder.",
+        "metrics.json, comparison.csv, report.html and models/ into the output folder.",
         "wearcast fit fleet.toml --out runs/2026-11",
     ),
 )
@@ -29,7 +29,8 @@ def command(config: Path, out_dir: Path | None) -> None:
     cfg, default_out = load(config)
     out_dir = out_dir or default_out
     state = JobState()
-    run_job(cfg, out_dir, stages_named(["check", "fit"]), state=state)
+    summaries = run_job(cfg, out_dir, stages_named(["check", "fit", "report"]), state=state)
     for line in describe_fit(state.fit):
         click.echo(line)
+    click.echo(f"report: {summaries['report']['report_path']}")
     click.echo(f"outputs are in {out_dir}")
