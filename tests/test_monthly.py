@@ -79,6 +79,9 @@ def test_worse_challenger_is_rejected_with_exit_3(good_champion):
     assert (run_dir / "ranked_units.csv").exists() and (run_dir / "report.html").exists()
     changes = json.loads((run_dir / "monthly_changes.json").read_text())
     assert changes["previous_run"] == Path(history[0]["run_dir"]).name
+    mover = changes["largest_movers"][0]
+    assert set(mover) == {"unit_id", "before", "now", "change", "drivers_now", "drivers_before"}
+    assert abs(mover["now"] - mover["before"] - mover["change"]) < 1e-5
 
 
 def test_rerunning_a_month_changes_nothing(good_champion):

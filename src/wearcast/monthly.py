@@ -252,8 +252,9 @@ def month_changes(previous_dir: Path, ranked: pd.DataFrame, top_k: int) -> dict 
         return None
     top_now = set(ranked.loc[ranked["rank"] <= top_k, "unit_id"])
     top_before = set(before.loc[before["rank"] <= top_k, "unit_id"])
-    merged = ranked[["unit_id", main] + [c for c in ("driver_1",) if c in ranked]].merge(
-        before[["unit_id", main]], on="unit_id", suffixes=("", "_before"))
+    drivers = [c for c in ("driver_1", "driver_2") if c in ranked and c in before]
+    merged = ranked[["unit_id", main] + drivers].merge(
+        before[["unit_id", main] + drivers], on="unit_id", suffixes=("", "_before"))
     merged["change"] = merged[main] - merged[f"{main}_before"]
     movers = merged.reindex(merged["change"].abs().sort_values(ascending=False, kind="mergesort").index)
     movers = movers.head(N_MOVERS)
@@ -265,7 +266,8 @@ def month_changes(previous_dir: Path, ranked: pd.DataFrame, top_k: int) -> dict 
         "largest_movers": [
             {"unit_id": r["unit_id"], "before": round(float(r[f"{main}_before"]), 6),
              "now": round(float(r[main]), 6), "change": round(float(r["change"]), 6),
-             "main_driver_now": r.get("driver_1")}
+             "drivers_now": [r[c] for c in drivers if isinstance(r[c], str)],
+             "drivers_before": [r[f"{c}_before"] for c in drivers if isinstance(r[f"{c}_before"], str)]}
             for _, r in movers.iterrows()
         ],
     }
