@@ -7,7 +7,10 @@ test fleet (seed 202) scores both models.
 
 * wearcast forest: 100 trees, mode random_forest (√p predictors per split),
   min_events_per_leaf 5, max_depth 12, 200 grid ages, 2 threads; fitted on the
-  full life table (counting-process rows with delayed entry).
+  full life table (counting-process rows with delayed entry); splits chosen on
+  one point per episode (grow_on="episodes", the default), leaf hazards on
+  every row.
+* wearcast-rows: the same, with splits chosen on every row (grow_on="rows").
 * wearcast-lives: the same forest on one row per life (covariates of the
   life's last row, entry = the life's first entry age): the peer's rows, with
   delayed entry kept.
@@ -26,8 +29,9 @@ Memory: each model runs in its own child process; "peak RSS" is the child's
 loaded, before fitting. Times are wall-clock (time.perf_counter). The machine
 is shared with other work, so times are indicative.
 
-Usage: ``python bench/bench_forest.py [--cache DIR] [--skip-100k]``; prints a
-Markdown table. Life tables are cached in DIR (default
+Usage: ``python bench/bench_forest.py [--cache DIR] [--skip-100k] [--no-readme]``;
+prints a Markdown table and writes the ``forest`` section of bench/README.md
+with pass/fail per target (``--from-json FILE`` re-renders saved results). Life tables are cached in DIR (default
 /tmp/wearcast-bench-forest) because loading a 100,000-position export takes
 minutes.
 """
@@ -36,6 +40,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import resource
 import subprocess
 import sys
@@ -111,7 +116,8 @@ def child(model: str, cache: Path, n_units: int) -> dict:
         test_rows, test_entry = last_rows(test)
         X_test = test.X.iloc[test_rows]
     baseline = _rss_mb()
-    out = {"model": model, "n_units": n_units, "train_rows": train.n_rows}
+    # 1-minute load average when the fit starts: the machine is shared, 2 cores
+    out = {"model": model, "n_units": n_units, "train_rows": train.n_rows, "load_avg": os.getloadavg()[0]}
     if model == "wearcast-lives":  # same rows as the peer (one per life), but keeping entry ages
         from wearcast import LifeTable
 
@@ -123,7 +129,8 @@ def child(model: str, cache: Path, n_units: int) -> dict:
     if model.startswith("wearcast"):
         from wearcast.models.forest import SurvivalForest
 
-        forest = SurvivalForest("random_forest", N_TREES, None, 5, 12, 200, seed=1, n_jobs=2)
+        grow_on = "rows" if model == "wearcast-rows" else "episodes"
+        forest = SurvivalForest("random_forest", N_TREES, None, 5, 12, 200, seed=1, n_jobs=2, grow_on=grow_on)
         start = time.perf_counter()
         forest.fit(train)
         out["fit_s"] = time.perf_counter() - start
@@ -169,17 +176,22 @@ def main(argv=None) -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--cache", type=Path, default=Path("/tmp/wearcast-bench-forest"))
     parser.add_argument("--skip-100k", action="store_true")
+    parser.add_argument("--no-readme", action="store_true")
+    parser.add_argument("--from-json", type=Path)
     parser.add_argument("--child", nargs=2, metavar=("MODEL", "N_UNITS"))
     args = parser.parse_args(argv)
     if args.child:
         print(json.dumps(child(args.child[0], args.cache, int(args.child[1]))))
+        return
+    if args.from_json:
+        _publish(json.loads(args.from_json.read_text()), args.no_readme)
         return
     args.cache.mkdir(parents=True, exist_ok=True)
     sizes = [2_000, 10_000] + ([] if args.skip_100k else [100_000])
     for n_units, seed in [TEST] + [(n, TRAIN[n]) for n in sizes]:
         spent = prepare(args.cache, n_units, seed)
         print(f"fleet {n_units} (seed {seed}) ready; load took {spent:.0f} s", file=sys.stderr)
-    parser_models = ("wearcast", "wearcast-lives", "scikit-survival")
+    parser_models = ("wearcast", "wearcast-rows", "wearcast-lives", "scikit-survival")
     runs = [(m, n) for n in (2_000, 10_000) for m in parser_models]
     runs += [] if args.skip_100k else [("wearcast", 100_000)]
     results = []
@@ -189,7 +201,64 @@ def main(argv=None) -> None:
         results.append(json.loads(done.stdout.strip().splitlines()[-1]))
         print(json.dumps(results[-1]), file=sys.stderr)
     (args.cache / "results.json").write_text(json.dumps(results, indent=2))
+    _publish(results, args.no_readme)
+
+
+def _publish(results: list[dict], no_readme: bool) -> None:
     print(render(results))
+    print(verdicts(results))
+    if not no_readme:
+        sys.path.insert(0, str(Path(__file__).resolve().parent))
+        from _common import write_section
+
+        write_section("forest", section(results))
+
+
+def verdicts(results: list[dict]) -> str:
+    """Pass/fail per target at 10,000 units (and the 100,000-unit memory bound)."""
+    by = {(r["model"], r["n_units"]): r for r in results}
+    peer = by.get(("scikit-survival", 10_000))
+    lines = []
+    for model in ("wearcast", "wearcast-rows", "wearcast-lives"):
+        ours = by.get((model, 10_000))
+        if not (ours and peer):
+            continue
+        speed = peer["fit_s"] / ours["fit_s"]
+        gap = ours["harrell_c"] - peer["harrell_c"]
+        memory = peer["peak_rss_mb"] / ours["peak_rss_mb"]
+        lines.append(
+            f"- {model}: fit {speed:.1f} x faster than the peer (target >= 20: "
+            f"**{'pass' if speed >= 20 else 'fail'}**); Harrell C {gap:+.4f} against the peer (target >= -0.005: "
+            f"**{'pass' if gap >= -0.005 else 'fail'}**); truncation-aware C {ours['trunc_c'] - peer['trunc_c']:+.4f}; "
+            f"peak memory 1/{memory:.0f} of the peer's (target <= 1/8: **{'pass' if memory >= 8 else 'fail'}**)."
+        )
+    big = by.get(("wearcast", 100_000))
+    if big:
+        lines.append(f"- wearcast at 100,000 units: peak {big['peak_rss_mb']:,.0f} MB (target < 2,048 MB: "
+                     f"**{'pass' if big['peak_rss_mb'] < 2048 else 'fail'}**), fit {big['fit_s']:.1f} s.")
+    return "\n".join(lines)
+
+
+def section(results: list[dict]) -> str:
+    return "\n".join([
+        "## Survival forest (bench/bench_forest.py)",
+        "",
+        f"Run {time.strftime('%Y-%m-%d')} on a 2-core machine **shared with other helpers' work at the same "
+        "time** (1-minute load average at each fit start in the last column), so times are indicative. "
+        "100 trees each; one separate 10,000-position test fleet (11,000 lives) scores every model on each "
+        "life's last row. Peer: scikit-survival `RandomSurvivalForest` (min_samples_leaf=15, "
+        "max_features=\"sqrt\", n_jobs=2) on one row per life, entry ignored. `wearcast`: the forest on the "
+        "full life table (counting-process rows, delayed entry), splits chosen on episodes (default); "
+        "`wearcast-rows`: splits chosen on every row; `wearcast-lives`: the forest on the peer's rows (one "
+        "per life) with the life's first entry age kept. Peak RSS = child process `ru_maxrss`; "
+        "fit+predict = peak minus RSS after loading the data.",
+        "",
+        render(results),
+        "",
+        "Targets at 10,000 units (computed from the table above):",
+        "",
+        verdicts(results),
+    ])
 
 
 def render(results: list[dict]) -> str:
@@ -197,13 +266,13 @@ def render(results: list[dict]) -> str:
         return format(r[key], fmt) if key in r and r[key] == r[key] else "—"
 
     lines = ["| model | training units (rows) | fit s | predict s | peak RSS MB | fit+predict RSS MB "
-             "| Harrell C | truncation-aware C | oracle Harrell C | oracle trunc. C |",
-             "|---|---|---|---|---|---|---|---|---|---|"]
+             "| Harrell C | truncation-aware C | oracle Harrell C | oracle trunc. C | load avg |",
+             "|---|---|---|---|---|---|---|---|---|---|---|"]
     for r in results:
         lines.append(f"| {r['model']} | {r['n_units']:,} ({r['train_rows']:,}) | {f(r, 'fit_s', '.1f')} | "
                      f"{f(r, 'predict_s', '.2f')} | {f(r, 'peak_rss_mb', '.0f')} | {f(r, 'fit_predict_rss_mb', '.0f')} | "
                      f"{f(r, 'harrell_c', '.4f')} | {f(r, 'trunc_c', '.4f')} | {f(r, 'oracle_harrell_c', '.4f')} | "
-                     f"{f(r, 'oracle_trunc_c', '.4f')} |")
+                     f"{f(r, 'oracle_trunc_c', '.4f')} | {f(r, 'load_avg', '.1f')} |")
     return "\n".join(lines)
 
 

@@ -389,3 +389,28 @@ def test_loading_refuses_unknown_versions_and_reads_version_1(tmp_path):
         SurvivalForest.load(folder)
     with pytest.raises(ConfigError, match="grow_on"):
         SurvivalForest(grow_on="lives")
+
+
+def test_episode_terms_give_the_summed_row_residuals_on_macs_split_into_pieces():
+    # Source: lifelines NelsonAalenFitter with entry on MACS (reference) for the pooled
+    # hazard; each subject's (W, T] is cut into 3 contiguous rows (one episode), so the
+    # episode's expected failures must equal the subject's single-row value.
+    from wearcast.models._forest_leaves import group_terms, pooled_hazard_of_groups, risk_index
+
+    d = _macs()
+    entry, exit, event = d["W"].to_numpy(), d["T"].to_numpy(), d["D"].to_numpy().astype(bool)
+    cuts = entry[:, None] + (exit - entry)[:, None] * np.array([0.0, 0.3, 0.7, 1.0])
+    row_entry, row_exit = cuts[:, :-1].ravel(), cuts[:, 1:].ravel()
+    row_event = np.zeros((len(d), 3), bool)
+    row_event[:, 2] = event
+    group = np.repeat(np.arange(len(d)), 3)
+    ages = np.unique(exit[event])
+    index = risk_index(row_entry, row_exit, row_event.ravel(), ages)
+    terms = group_terms(index, group)
+    assert len(terms.at) <= 2 * len(d)  # the inner cuts cancel
+    w = np.tile([1.0, 2.0], len(d))[: len(d)]
+    H, expected = pooled_hazard_of_groups(index, terms, w)
+    ref = NelsonAalenFitter(nelson_aalen_smoothing=False).fit(np.repeat(exit, w.astype(int)), np.repeat(event, w.astype(int)),
+                                                              entry=np.repeat(entry, w.astype(int)))
+    np.testing.assert_allclose(H[1:], ref.cumulative_hazard_at_times(ages).to_numpy(), rtol=1e-9)
+    np.testing.assert_allclose(event - expected, martingale_residuals(entry, exit, event, w), atol=1e-9)

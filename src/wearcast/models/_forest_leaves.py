@@ -89,6 +89,53 @@ def pooled_cumulative_hazard(index: RiskIndex, weights: np.ndarray) -> np.ndarra
     return np.concatenate([[0.0], np.cumsum(increment)])
 
 
+@dataclass(frozen=True)
+class GroupTerms:
+    """The at-risk starts and stops of groups of rows sharing one weight (an
+    episode's rows share its unit's bootstrap count), with the stop of one row
+    and the start of the next row at the same failure-age index cancelled;
+    built once per fit. Contiguous rows ``(a, b], (b, c]`` leave two terms.
+
+    ``group`` (t,), ``at`` (t,) failure-age index in 0..D, ``sign`` (t,) float
+    net count (+ for starts, - for stops); ``fail_group`` (f,) group of each
+    failed row of the index.
+    """
+
+    group: np.ndarray
+    at: np.ndarray
+    sign: np.ndarray
+    fail_group: np.ndarray
+
+
+def group_terms(index: RiskIndex, group_of_row: np.ndarray) -> GroupTerms:
+    """Net start/stop terms per group; ``group_of_row`` (n,) int64 group numbers."""
+    span = np.int64(index.n_ages + 1)
+    group_of_row = np.asarray(group_of_row, np.int64)
+    keys = np.concatenate([group_of_row * span + index.first, group_of_row * span + index.stop])
+    signs = np.concatenate([np.ones(len(group_of_row)), -np.ones(len(group_of_row))])
+    unique, where = np.unique(keys, return_inverse=True)
+    net = np.bincount(where.ravel(), signs, len(unique))
+    keep = net != 0
+    return GroupTerms(unique[keep] // span, unique[keep] % span, net[keep], group_of_row[index.fail_rows])
+
+
+def pooled_hazard_of_groups(index: RiskIndex, terms: GroupTerms, group_weights: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`pooled_cumulative_hazard` from group terms, and each group's expected failures.
+
+    ``group_weights`` (n_groups,) the weight every row of a group carries.
+    Returns ``(H, expected)``: ``H`` (D + 1,) as in :func:`pooled_cumulative_hazard`;
+    ``expected`` (n_groups,) the sum over the group's rows of ``H[stop] - H[first]``.
+    """
+    D = index.n_ages
+    w = np.asarray(group_weights, float)
+    at_risk = np.cumsum(np.bincount(terms.at, terms.sign * w[terms.group], D + 1))[:D]
+    deaths = np.bincount(index.fail_at, w[terms.fail_group], D)
+    increment = np.divide(deaths, at_risk, out=np.zeros(D), where=deaths > 0)
+    H = np.concatenate([[0.0], np.cumsum(increment)])
+    expected = -np.bincount(terms.group, terms.sign * H[terms.at], len(w))
+    return H, expected
+
+
 def leaf_hazards_indexed(index: RiskIndex, leaf: np.ndarray, n_leaves: int, weights: np.ndarray) -> np.ndarray:
     """Nelson–Aalen with delayed entry per leaf at the grid ages, float32 (n_leaves, m).
 

@@ -34,7 +34,8 @@ from wearcast.exceptions import BundleError, ConfigError, ModelError
 from wearcast.models._forest_encode import encode, encoded_names, learn_levels
 from wearcast.models._forest_grow import FlatTree, apply_tree, episodes, grow_on_points, route
 from wearcast.models._forest_leaves import (
-    RiskIndex, failure_age_grid, grid_column, leaf_hazards_indexed, pooled_cumulative_hazard, risk_index,
+    GroupTerms, RiskIndex, failure_age_grid, grid_column, group_terms, leaf_hazards_indexed,
+    pooled_cumulative_hazard, pooled_hazard_of_groups, risk_index,
 )
 from wearcast.models._forest_oob import (
     MAX_SCORED_LIVES, OOBAccumulator, bootstrap_draw, harrell_c, last_rows_of_lives,
@@ -60,9 +61,9 @@ class _FitData:
     n_units: int
     index: RiskIndex
     lives: np.ndarray  # (n_lives,) last row of each life
-    point_of_row: np.ndarray | None  # (n_rows,) episode of each row; None when growing on rows
-    point_rows: np.ndarray | None  # (n_episodes,) closing row of each episode
+    point_rows: np.ndarray | None  # (n_episodes,) closing row of each episode; None when growing on rows
     point_X: np.ndarray | None  # float32 (n_episodes, p) covariates of the closing rows
+    point_terms: GroupTerms | None  # the episodes' at-risk starts and stops
 
 
 @dataclass(frozen=True)
@@ -173,12 +174,14 @@ class SurvivalForest(SurvivalModel):
         scored = np.arange(len(lives))
         if len(lives) > MAX_SCORED_LIVES:
             scored = np.sort(np.random.default_rng(scoring_seed).choice(len(lives), MAX_SCORED_LIVES, replace=False))
-        point_of_row = point_rows = point_X = None
+        index = risk_index(entry, exit, event, self.grid_)
+        point_rows = point_X = point_terms = None
         if self.grow_on == "episodes":
             point_of_row, point_rows = episodes(units, life, exit, event)
             point_X = np.ascontiguousarray(X[point_rows])
-        data = _FitData(np.ascontiguousarray(X), np.asarray(event, float), units, n_units,
-                        risk_index(entry, exit, event, self.grid_), lives, point_of_row, point_rows, point_X)
+            point_terms = group_terms(index, point_of_row)
+        data = _FitData(np.ascontiguousarray(X), np.asarray(event, float), units, n_units, index, lives,
+                        point_rows, point_X, point_terms)
         oob = OOBAccumulator(event[lives], exit[lives], units[lives], self.n_trees, scored)
         jobs = (delayed(self._grow_one)(int(s), data) for s in self.tree_seeds_)
         trees, hazards = [], []
@@ -201,17 +204,18 @@ class SurvivalForest(SurvivalModel):
     def _grow_one(self, seed: int, data: _FitData) -> _GrownTree:
         counts, tree_seed = self._draw(seed, data.n_units)
         weights = counts[data.units].astype(float)
-        # delayed-entry martingale residual of every row under the tree's pooled Nelson-Aalen
-        pooled = pooled_cumulative_hazard(data.index, weights)
-        residual = data.event - (pooled[data.index.stop] - pooled[data.index.first])
+        # delayed-entry martingale residuals under the tree's pooled Nelson-Aalen
         if data.point_rows is None:
+            pooled = pooled_cumulative_hazard(data.index, weights)
+            residual = data.event - (pooled[data.index.stop] - pooled[data.index.first])
             points = np.flatnonzero(weights > 0)
             point_X, point_residual, point_rows = np.ascontiguousarray(data.X[points]), residual[points], points
-        else:
-            point_residual = np.bincount(data.point_of_row, residual, len(data.point_rows))
-            points = np.flatnonzero(counts[data.units[data.point_rows]] > 0)
-            point_X, point_residual = data.point_X[points], point_residual[points]
+        else:  # an episode's residual: its failure minus the expected failures summed over its rows
+            point_weights = counts[data.units[data.point_rows]].astype(float)
+            _, expected = pooled_hazard_of_groups(data.index, data.point_terms, point_weights)
+            points = np.flatnonzero(point_weights > 0)
             point_rows = data.point_rows[points]
+            point_X, point_residual = data.point_X[points], data.event[point_rows] - expected[points]
         tree, regressor, node_to_leaf = grow_on_points(  # a failure always closes its episode
             point_X, point_residual, weights[point_rows], data.event[point_rows], max_features=self._max_features(),
             max_depth=self.max_depth, min_events=self.min_events_per_leaf, random_state=tree_seed)
