@@ -64,6 +64,7 @@ class BuildOutcome:
     rejected: list = field(default_factory=list)
     after_as_of: list = field(default_factory=list)
     kept: list = field(default_factory=list)
+    ordered: bool = False  # frame already sorted by unit_id, life, entry_age
 
     def reject(self, source: str, index: np.ndarray, column, values, reason) -> None:
         if len(index):
@@ -216,8 +217,8 @@ def build_register_log(register: pd.DataFrame, events: pd.DataFrame, readings: p
         filled = pd.DataFrame(values).groupby(rd["code"], sort=False).ffill()
         values = filled.groupby(rd["code"], sort=False).bfill().to_numpy()
 
-    out.frame = _pieces(seg, rd["code"], rd["date"], values, register, unit_row, ids, install, decommissioned,
-                        settings)
+    out.frame, out.ordered = _pieces(seg, rd["code"], rd["date"], values, register, unit_row, ids, install,
+                                     decommissioned, settings)
     return out
 
 
@@ -231,20 +232,23 @@ def _sorted_log(frame: pd.DataFrame | None, date_col: str, settings: BuildSettin
         return None
     src = _source(frame)
     code = _codes_in(frame["unit_id"], ids)
-    keys = {"_unit": code, date_col: frame[date_col].to_numpy()}
-    kind = frame["event_kind"].map(KIND_ORDER).fillna(0) if "event_kind" in frame else None
-    keys["_rank"] = 0 if kind is None else kind.to_numpy()
+    when = _ns(frame[date_col])
     # Same-date rows are ordered by their contents, never by file position, so the
     # row that wins (and the one quarantined as a repeat) does not depend on row order.
-    extra = (["failure_mode"] if "failure_mode" in frame else []) \
-        + [c for c in settings.reading_columns if c in frame]
-    for c in extra:
-        keys[c] = frame[c].to_numpy()
-    keys["_line"] = frame["_line"].to_numpy()
-    table = pd.DataFrame(keys)
-    order = table.sort_values(list(keys), kind="mergesort").index.to_numpy()
+    # Keys, most significant first: unit, date, kind rank, failure mode, readings, line.
+    order = np.lexsort((when.view(np.int64), code))
+    c, w = code[order], when[order]
+    if ((c[1:] == c[:-1]) & (w[1:] == w[:-1])).any():  # ties on (unit, date): use every key
+        keys = [code, when.view(np.int64)]
+        if "event_kind" in frame:
+            keys.append(frame["event_kind"].map(KIND_ORDER).fillna(0).to_numpy(dtype=float))
+        if "failure_mode" in frame:
+            keys.append(pd.factorize(np.asarray(frame["failure_mode"], dtype=object), sort=True)[0])
+        keys += [frame[c].to_numpy(dtype=float) for c in settings.reading_columns if c in frame]
+        keys.append(frame["_line"].to_numpy())
+        order = np.lexsort(keys[::-1])
     code = code[order]
-    when = _ns(frame[date_col])[order]
+    when = when[order]
     index = frame.index.to_numpy()[order]
     if (code < 0).any():
         raise ValueError("a log row's unit is not in the register; the caller must check this")
@@ -351,8 +355,11 @@ def _walk_events(ev: dict, install: np.ndarray, end: np.ndarray, renewal: str) -
 
 def _pieces(seg: dict, r_code: np.ndarray, r_date: np.ndarray, r_values: np.ndarray, register: pd.DataFrame,
             unit_row: np.ndarray, ids: pd.Index, install: np.ndarray, decommissioned: np.ndarray,
-            settings: BuildSettings) -> pd.DataFrame:
-    """Cut segments at reading dates into life-table rows (one frame, unit order kept)."""
+            settings: BuildSettings) -> tuple[pd.DataFrame, bool]:
+    """Cut segments at reading dates into life-table rows (one frame, unit order kept).
+
+    Also returns whether the rows are already in (unit_id, life, entry_age) order.
+    """
     code = seg["code"]
     obs_start = install[code]
     if settings.records_start is not None:
@@ -411,12 +418,16 @@ def _pieces(seg: dict, r_code: np.ndarray, r_date: np.ndarray, r_values: np.ndar
             data[c] = np.where(got, r_values[np.clip(at, 0, max(n_r - 1, 0)), i] if n_r else np.nan, np.nan)
     columns = ["unit_id", "life", "entry_age", "exit_age", "failed", "mode", "in_service",
                "install_date", "entry_date", "exit_date", *settings.register_columns, *settings.reading_columns]
-    frame = pd.DataFrame({c: data[c] for c in columns}, columns=columns)
+    frame = pd.DataFrame({c: data[c] for c in columns}, columns=columns, copy=False)
     if frame.empty:
         frame = frame.astype({c: object for c in columns})
         frame["failed"] = frame["failed"].astype(bool)
         frame["in_service"] = frame["in_service"].astype(bool)
-    return frame
+        return frame, False
+    life, age = data["life"], data["entry_age"]
+    step = (u[1:] > u[:-1]) | ((u[1:] == u[:-1]) & ((life[1:] > life[:-1])
+                                                    | ((life[1:] == life[:-1]) & (age[1:] >= age[:-1]))))
+    return frame, bool(step.all())
 
 
 def build_from_intervals(rows: pd.DataFrame, settings: BuildSettings, *, dated: bool) -> BuildOutcome:

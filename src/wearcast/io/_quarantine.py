@@ -32,6 +32,7 @@ class Quarantine:
         self._tables: dict[str, object] = {}  # source -> RawTable
         self._taken: dict[str, np.ndarray] = {}  # source -> bool per raw row
         self._chunks: list[tuple[str, np.ndarray, np.ndarray, np.ndarray, np.ndarray]] = []
+        self._parts: list[pd.DataFrame] = []  # sealed chunks
 
     def track(self, table) -> None:
         """Register a :class:`~wearcast.io._readers.RawTable` (rows are its frame positions)."""
@@ -103,22 +104,28 @@ class Quarantine:
         cells = np.array([str(v) for v in np.asarray(values, dtype=object)[new]], dtype=object)
         self._chunks.append((source, index[new], pick(column), cells, pick(reason)))
 
-    def frame(self) -> pd.DataFrame:
-        """The rejected rows sorted by file and line (columns QUARANTINE_COLUMNS)."""
-        if not self._chunks:
-            return pd.DataFrame({c: pd.Series(dtype="int64" if c == "line" else object)
-                                 for c in QUARANTINE_COLUMNS})
-        parts = []
+    def seal(self) -> None:
+        """Copy the rejected rows' lines and text out of the raw tables and let the tables go
+        (frees the export's memory once every row is placed). No rejections after this."""
         for source, index, cols, cells, whys in self._chunks:
             table = self._tables[source]
             lines = table.frame["_line"].to_numpy()[index]
-            parts.append(pd.DataFrame({
+            self._parts.append(pd.DataFrame({
                 "source_file": np.full(len(index), source, dtype=object),
                 "line": lines.astype(np.int64),
                 "column": cols, "value": cells, "reason": whys,
                 "original_row": original_rows(table, index),
             }))
-        out = pd.concat(parts, ignore_index=True)
+        self._chunks = []
+        self._tables = {}
+
+    def frame(self) -> pd.DataFrame:
+        """The rejected rows sorted by file and line (columns QUARANTINE_COLUMNS)."""
+        self.seal()
+        if not self._parts:
+            return pd.DataFrame({c: pd.Series(dtype="int64" if c == "line" else object)
+                                 for c in QUARANTINE_COLUMNS})
+        out = pd.concat(self._parts, ignore_index=True)
         return out.sort_values(["source_file", "line"], kind="mergesort").reset_index(drop=True)
 
 

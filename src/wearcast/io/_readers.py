@@ -82,7 +82,7 @@ def read_export_file(
 
 def _compacted(raw: RawTable) -> RawTable:
     frame = raw.frame
-    for c in raw.columns:
+    for c in (*raw.columns, "_source", "_malformed"):
         if not isinstance(frame[c].dtype, pd.CategoricalDtype):
             frame[c] = frame[c].astype("category")
     return raw
@@ -104,10 +104,19 @@ def _read_csv(path: Path, delimiter: str | None, encoding: str, compact: bool = 
         ) from exc
     text = text.lstrip("\ufeff")  # a BOM left by a non-UTF-8 codec
     sep = delimiter or sniff_delimiter(text)
-    del data
-    fast = _read_csv_fast(path, text, sep, compact)
+    if codec == "utf-8-sig":  # the file's own bytes, less leading BOMs, are the text in UTF-8
+        skip = 0
+        while data.startswith(b"\xef\xbb\xbf", skip):
+            skip += 3
+        body = data[skip:] if skip else data
+    else:
+        body = text.encode("utf-8")
+    del data, text  # one copy of the file in memory at a time
+    fast = _read_csv_fast(path, body, sep, compact)
     if fast is not None:
         return fast
+    text = body.decode("utf-8")
+    del body
     reader = csv.reader(io.StringIO(text, newline=""), delimiter=sep)
     header: list[str] | None = None
     records, lines, malformed = [], [], []
@@ -226,7 +235,7 @@ def _first_lines(text: str, n: int) -> list[str]:
 _ASCII_SPACE = b" \t\n\r\x0b\x0c\x1c\x1d\x1e\x1f"
 
 
-def _read_csv_fast(path: Path, text: str, sep: str, compact: bool) -> RawTable | None:
+def _read_csv_fast(path: Path, body: bytes, sep: str, compact: bool) -> RawTable | None:
     """Split a CSV without quote characters with pandas' C parser; None when the
     file needs the csv module (quotes, NUL, lone carriage returns, odd delimiter).
 
@@ -234,13 +243,12 @@ def _read_csv_fast(path: Path, text: str, sep: str, compact: bool) -> RawTable |
     problems as the csv-module path: without quotes every physical line is one
     record and its fields are the pieces between delimiters.
     """
-    if len(sep) != 1 or ord(sep) >= 128 or sep in "\r\n\"" or '"' in text or "\0" in text:
+    if len(sep) != 1 or ord(sep) >= 128 or sep in "\r\n\"" or b'"' in body or b"\0" in body:
         return None
-    body = text.encode("utf-8")
     buf = np.frombuffer(body, dtype=np.uint8)
     if not len(buf):
         return None
-    if "\r" in text:
+    if b"\r" in body:
         cr = np.flatnonzero(buf == 13)
         if (cr + 1 >= len(buf)).any() or (buf[np.minimum(cr + 1, len(buf) - 1)] != 10).any():
             return None  # lone \r line ends: leave them to the csv module
@@ -253,9 +261,10 @@ def _read_csv_fast(path: Path, text: str, sep: str, compact: bool) -> RawTable |
     soft[list(_ASCII_SPACE)] = True
     soft[ord(sep)] = True
     soft[128:] = True
-    has_solid = np.logical_or.reduceat(~soft[buf], starts)
-    has_high = np.logical_or.reduceat(buf >= 128, starts)
-    n_fields = np.add.reduceat(buf == ord(sep), starts, dtype=np.int64) + 1
+    lengths = np.diff(np.append(starts, len(buf)))  # line break included
+    has_solid = _per_line(buf, starts, lambda b: soft[b]) < lengths
+    has_high = _per_line(buf, starts, lambda b: b >= 128) > 0
+    n_fields = _per_line(buf, starts, lambda b: b == ord(sep)) + 1
     blank = ~has_solid & ~has_high
     for i in np.flatnonzero(~has_solid & has_high):  # only Unicode spaces? decide as the csv path does
         end = newlines[i] if i < len(newlines) else len(buf)
@@ -289,6 +298,23 @@ def _read_csv_fast(path: Path, text: str, sep: str, compact: bool) -> RawTable |
     odd = np.flatnonzero(counts != width)
     malformed[odd] = [f"row has {int(c)} fields, the header has {width}" for c in counts[odd]]
     return _finish(path, frame, header, rows + 1, malformed, sep)
+
+
+def _per_line(buf: np.ndarray, starts: np.ndarray, test, chunk: int = 1 << 25) -> np.ndarray:
+    """How many bytes of each line pass ``test`` (bytes -> bool array); ``starts``: line
+    start offsets (increasing, first 0). Works in chunks of whole lines to bound memory."""
+    counts = np.zeros(len(starts), dtype=np.int64)
+    first = 0
+    while first < len(starts):
+        last = int(np.searchsorted(starts, starts[first] + chunk, side="right"))
+        last = max(last, first + 1)
+        lo = int(starts[first])
+        hi = int(starts[last]) if last < len(starts) else len(buf)
+        hits = np.flatnonzero(test(buf[lo:hi]))
+        edges = np.append(starts[first:last] - lo, hi - lo)
+        counts[first:last] = np.diff(np.searchsorted(hits, edges, side="left"))
+        first = last
+    return counts
 
 
 def join_fields(fields, sep: str) -> str:

@@ -199,6 +199,7 @@ def _load_register_log(config: Config, as_of_override) -> Loaded:
     reg_ok = reg[~_rejected(reg, q)]
     ev_ok = ev[~_rejected(ev, q)]
     rd_ok = None if rd is None else rd[~_rejected(rd, q)]
+    reg = ev = rd = None  # the working copies are done with; the raw tables stay for the quarantine
     backtest = as_of_override is not None
     if backtest:
         as_of = pd.Timestamp(as_of_override)
@@ -215,6 +216,8 @@ def _load_register_log(config: Config, as_of_override) -> Loaded:
     _merge(outcome, q)
     rows_read = sum(len(t.frame) for t in (register, events, readings) if t is not None)
     _account([t for t in (register, events, readings) if t is not None], outcome, q)
+    q.seal()
+    del register, events, readings, reg_ok, ev_ok, rd_ok  # only the life table is left to make
     return _finish(config, outcome, q, rows_read, as_of, reading_cols + static_cols)
 
 
@@ -287,7 +290,10 @@ def _load_life_table(config: Config, as_of_override) -> Loaded:
     outcome = build_from_intervals(ok[keep], settings, dated=dated)
     _merge(outcome, q)
     _account([table], outcome, q)
-    return _finish(config, outcome, q, len(table.frame), as_of, tuple(fleet.covariates))
+    q.seal()
+    rows_read = len(table.frame)
+    del table, f, ok
+    return _finish(config, outcome, q, rows_read, as_of, tuple(fleet.covariates))
 
 
 def _looks_dated(values: pd.Series, decimal: str) -> bool:
@@ -325,15 +331,19 @@ def _finish(config: Config, outcome: BuildOutcome, q: Quarantine, rows_read: int
     fleet = config.fleet
     order = list(dict.fromkeys(covariates))
     cov = [c for c in fleet.covariates if c in order]
-    frame = outcome.frame
+    rows_kept, rows_after_as_of = outcome.n_kept, outcome.n_after_as_of
+    outcome.kept.clear(), outcome.after_as_of.clear(), outcome.rejected.clear()
+    frame, outcome.frame = outcome.frame, None
     table = None
     if len(frame):
         sort = ["unit_id", "life", "entry_age"]
-        frame = frame.sort_values(sort, kind="mergesort").reset_index(drop=True)
+        # When the builder already emitted the rows in this order, the stable sort would keep them in place.
+        if not (outcome.ordered and isinstance(frame.index, pd.RangeIndex) and frame.index.start == 0):
+            frame = frame.sort_values(sort, kind="mergesort").reset_index(drop=True)
         table = LifeTable.from_frame(frame, cov, fleet.categorical, as_of=as_of, source=config.source,
                                      meta={"renewal": fleet.renewal, "group_by": list(fleet.group_by)})
-    return Loaded(table=table, quarantine=q, rows_read=rows_read, rows_kept=outcome.n_kept,
-                  rows_after_as_of=outcome.n_after_as_of, as_of=as_of)
+    return Loaded(table=table, quarantine=q, rows_read=rows_read, rows_kept=rows_kept,
+                  rows_after_as_of=rows_after_as_of, as_of=as_of)
 
 
 def load(config: Config, as_of: dt.date | None = None) -> Loaded:
