@@ -19,9 +19,13 @@ demo: $(STAMP)
 test: $(STAMP)
 	$(BIN)/python -m pytest -q
 
+BENCHES := bench_io bench_boosted bench_forest bench_refits bench_choice
+
+# Long (tens of minutes on 2 cores): each script runs wearcast beside its peers and
+# rewrites its own section of bench/README.md. Run one with e.g. `make bench BENCHES=bench_io`.
 bench: $(STAMP)
 	$(BIN)/pip install --quiet -e '.[bench]'
-	$(BIN)/python bench/run.py
+	for b in $(BENCHES); do $(BIN)/python bench/$$b.py || exit 1; done
 
 clean:
 	rm -rf $(VENV) $(DEMO_OUT) .pytest_cache
