@@ -133,3 +133,97 @@ def test_excel_register_and_parquet_log_load_end_to_end(tmp_path):
     f = load_export(cfg).table.frame
     assert f[["unit_id", "life", "entry_age", "exit_age", "failed"]].values.tolist() == [
         ["00042", 1, 0.0, 61.0, True], ["00042", 2, 0.0, 31.0, False], ["00107", 1, 0.0, 61.0, False]]
+
+
+# -- the C-parser path for quote-free CSV against the csv-module path ------------------
+
+from hypothesis import HealthCheck, given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+from wearcast.io import _readers  # noqa: E402
+
+_CELLS = st.sampled_from(["", " ", "a", "00042", "2021-03-01", "5.5", "x y", "\u00a0", "é", "\t"])
+
+
+@st.composite
+def _csv_texts(draw):
+    sep = draw(st.sampled_from([",", ";", "\t", "|"]))
+    end = draw(st.sampled_from(["\n", "\r\n"]))
+    header = draw(st.sampled_from([["unit_id", "b", "c"], ["unit_id"], ["  unit_id ", "b"]]))
+    lines = [""] * draw(st.integers(0, 2)) + [sep.join(header)]
+    for _ in range(draw(st.integers(0, 8))):
+        lines.append(sep.join(draw(st.lists(_CELLS, min_size=0, max_size=5))))
+    return sep, end.join(lines) + draw(st.sampled_from(["", end, end + end]))
+
+
+def _read_both(path, sep, compact):
+    """(fast path result, csv-module result); each a RawTable or the DataError message."""
+    def attempt():
+        try:
+            return read_export_file(path, delimiter=sep, compact=compact)
+        except DataError as exc:
+            return str(exc)
+
+    fast = attempt()
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr(_readers, "_read_csv_fast", lambda *a, **k: None)
+        slow = attempt()
+    return fast, slow
+
+
+@settings(max_examples=80, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(_csv_texts(), st.booleans())
+def test_quote_free_csv_reads_the_same_on_both_paths(tmp_path_factory, case, compact):
+    """Cells, line numbers, blank-line skipping and field-count problems agree with the
+    csv module (Python's reference reader), also with Unicode spaces and CRLF."""
+    sep, text = case
+    path = tmp_path_factory.mktemp("csv") / "export.csv"
+    path.write_bytes(text.encode("utf-8"))
+    fast, slow = _read_both(path, sep, compact)
+    if isinstance(slow, str):
+        assert fast == slow
+        return
+    assert fast.columns == slow.columns and fast.delimiter == slow.delimiter == sep
+    cols = [*fast.columns, "_source", "_line", "_malformed"]
+    pd.testing.assert_frame_equal(fast.frame[cols].astype(object), slow.frame[cols].astype(object))
+
+
+def test_fast_path_is_taken_only_without_quotes(tmp_path):
+    plain = b"unit_id,b\n1,2\n"
+    assert _readers._read_csv_fast(tmp_path / "x.csv", plain, ",", False) is not None
+    assert _readers._read_csv_fast(tmp_path / "x.csv", b'unit_id,b\n1,"2,3"\n', ",", False) is None
+    assert _readers._read_csv_fast(tmp_path / "x.csv", b"unit_id,b\r1,2\r", ",", False) is None
+
+
+def test_original_row_of_a_rejected_quoted_row_is_rebuilt_as_written(tmp_path):
+    """Only rejected rows get their text back, joined the way the csv module writes them."""
+    from wearcast.config import config_from_dict
+    from wearcast.io import load_export
+
+    (tmp_path / "register.csv").write_text('unit_id,install_date,site\nP-1,2020-01-01,"North, upper"\n'
+                                           'P-2,2020-13-01,"South ""B"""\n', encoding="utf-8")
+    (tmp_path / "events.csv").write_text("unit_id,event_date,event_kind\n", encoding="utf-8")
+    cfg = config_from_dict({"input": {"register": "register.csv", "events": "events.csv"},
+                            "fleet": {"as_of": "2021-01-01", "max_bad_share": 1.0}})
+    cfg = cfg.__class__(**{**cfg.__dict__, "base_dir": tmp_path})
+    q = load_export(cfg).quarantine
+    assert q[["line", "column", "original_row"]].values.tolist() == [[3, "install_date", 'P-2,2020-13-01,"South ""B"""']]
+
+
+def test_parsers_give_the_same_cell_by_cell_on_text_and_categorical_columns():
+    """Parsers run once per distinct text; the result must equal parsing each cell alone."""
+    texts = ["2021-02-28", "", "2021-02-30", "2021-02-28", "28.02.2021 13:30", "x", "1.5", "1,5", "1e3", " 7 "]
+    checks = [lambda v: _parse.parse_dates(v, day_first=True), _parse.parse_numbers,
+              lambda v: _parse.parse_numbers(v, decimal=","), _parse.parse_flags]
+    for parse in checks:
+        whole, whole_bad = parse(pd.Series(texts))
+        cats, cats_bad = parse(pd.Series(texts, dtype="category"))
+        pd.testing.assert_series_equal(whole, cats)
+        assert whole_bad.tolist() == cats_bad.tolist()
+        for i, text in enumerate(texts):
+            one, one_bad = parse(pd.Series([text]))
+            assert one_bad[0] == whole_bad[i]
+            assert (pd.isna(one[0]) and pd.isna(whole[i])) or one[0] == whole[i]
+    reasons = _parse.id_problems(pd.Series(["1.2E+04", "", "A-1", "1.2E+04"], dtype="category"))
+    assert [r.split(" (")[0] for r in reasons] == ["unit id in scientific notation", "missing unit id", "",
+                                                  "unit id in scientific notation"]
