@@ -21,8 +21,8 @@ def learn_levels(X: pd.DataFrame, categorical: tuple[str, ...]) -> dict[str, lis
     """Sorted text levels of each categorical covariate (missing excluded)."""
     levels = {}
     for col in categorical:
-        values = X[col].dropna().astype(str)
-        levels[col] = sorted(values.unique().tolist())
+        _, uniques = pd.factorize(X[col], use_na_sentinel=True)
+        levels[col] = sorted({str(v) for v in uniques})
     return levels
 
 
@@ -48,12 +48,13 @@ def encode(X: pd.DataFrame, covariates: tuple[str, ...], levels: dict[str, list[
     blocks = []
     for col in covariates:
         if col in levels:
-            text = X[col].astype("object").where(X[col].notna(), None)
-            text = np.array([None if v is None else str(v) for v in text], dtype=object)
-            block = np.zeros((len(X), len(levels[col])), dtype=np.float32)
-            for j, level in enumerate(levels[col]):
-                block[:, j] = text == level
-            blocks.append(block)
+            # one-hot through the distinct values (few) rather than row by row
+            codes, uniques = pd.factorize(X[col], use_na_sentinel=True)
+            position = {level: j for j, level in enumerate(levels[col])}
+            column = np.array([position.get(str(v), -1) for v in uniques] + [-1], dtype=np.int64)[codes]
+            block = np.zeros((len(X), len(levels[col]) + 1), dtype=np.float32)
+            block[np.arange(len(X)), column] = 1.0  # -1 (missing or unseen level) lands in the spare last column
+            blocks.append(block[:, :-1])
         else:
             values = pd.to_numeric(X[col], errors="coerce").to_numpy(dtype=np.float64)
             blocks.append(values.astype(np.float32)[:, None])

@@ -2,8 +2,10 @@
 
 Each tree is grown on a bootstrap sample of *units* (whole histories: a unit
 drawn k times gives its rows weight k) by least-squares splits on
-delayed-entry martingale residuals (see :mod:`wearcast.models._forest_grow`).
-Each leaf keeps the Nelson–Aalen cumulative hazard of its in-bag rows with
+delayed-entry martingale residuals (see :mod:`wearcast.models._forest_grow`),
+chosen by default on one point per episode (a life's rows up to a failure,
+residuals summed, covariates of the closing row); every in-bag row is then
+routed down the tree. Each leaf keeps the Nelson–Aalen cumulative hazard of its in-bag rows with
 delayed entry, on a bounded grid of ages (:mod:`wearcast.models._forest_leaves`),
 stored as float32. The forest's cumulative hazard is the average over trees of
 the leaf hazards; between grid ages it is a right-continuous step.
