@@ -414,3 +414,22 @@ def test_episode_terms_give_the_summed_row_residuals_on_macs_split_into_pieces()
                                                               entry=np.repeat(entry, w.astype(int)))
     np.testing.assert_allclose(H[1:], ref.cumulative_hazard_at_times(ages).to_numpy(), rtol=1e-9)
     np.testing.assert_allclose(event - expected, martingale_residuals(entry, exit, event, w), atol=1e-9)
+
+
+def test_episodes_equal_rows_when_every_life_is_one_row():
+    # With one row per life each episode is one row, so both growing points must give
+    # the same forest (consistency of the two residual paths).
+    table = _truncated_weibull(400, seed=14)
+    rows = SurvivalForest(n_trees=6, seed=2, grow_on="rows").fit(table)
+    lives = SurvivalForest(n_trees=6, seed=2, grow_on="episodes").fit(table)
+    np.testing.assert_array_equal(rows.risk_score(table.X), lives.risk_score(table.X))
+
+
+def test_episode_forest_same_for_one_and_two_workers_on_the_scenario(scenario_table):
+    # Repeated lives and time-varying rows: results must not depend on n_jobs.
+    table = scenario_table
+    one = SurvivalForest(n_trees=6, seed=9, n_jobs=1).fit(table)
+    two = SurvivalForest(n_trees=6, seed=9, n_jobs=2).fit(table)
+    np.testing.assert_array_equal(one.risk_score(table.X), two.risk_score(table.X))
+    np.testing.assert_array_equal(one.oob_risk_, two.oob_risk_)
+    assert one.oob_curve_.equals(two.oob_curve_)
