@@ -66,7 +66,9 @@ class FlatTree:
         return int((self.leaf >= 0).sum())
 
 
-def episodes(unit_codes: np.ndarray, life: np.ndarray, exit: np.ndarray, event: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def episodes(
+    unit_codes: np.ndarray, life: np.ndarray, exit: np.ndarray, event: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
     """Group rows into episodes: the rows of one unit's life up to and including
     a failure (a life under repair holds several episodes).
 

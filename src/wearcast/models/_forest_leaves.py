@@ -119,7 +119,9 @@ def group_terms(index: RiskIndex, group_of_row: np.ndarray) -> GroupTerms:
     return GroupTerms(unique[keep] // span, unique[keep] % span, net[keep], group_of_row[index.fail_rows])
 
 
-def pooled_hazard_of_groups(index: RiskIndex, terms: GroupTerms, group_weights: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def pooled_hazard_of_groups(
+    index: RiskIndex, terms: GroupTerms, group_weights: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
     """:func:`pooled_cumulative_hazard` from group terms, and each group's expected failures.
 
     ``group_weights`` (n_groups,) the weight every row of a group carries.
