@@ -168,7 +168,7 @@ def fit_sksurv(table, a):
 
 def sksurv_trees(a, n_units: int) -> int:
     """Trees for scikit-survival: ``--sksurv-trees`` at 2,000 units, fewer on larger
-    fleets (its per-tree cost grows about with the square of the rows)."""
+    fleets (its per-tree cost grows faster than the row count)."""
     return max(1, int(round(a.sksurv_trees * min(1.0, (2000 / n_units) ** 2))))
 
 
@@ -327,7 +327,7 @@ def report(rows, extra, a) -> str:
     lines = [
         "## Boosted survival trees (`bench/bench_boosted.py`)",
         "",
-        f"Fixed B = {a.trees} trees of depth {a.depth}, λ = {a.lr}, row subsample 0.8, {a.threads} threads "
+        f"Fixed B = {a.trees} trees of depth {a.depth}, λ = {a.lr}, row subsample 0.8, {a.threads} thread(s) "
         f"for every booster. Backtest: {extra['n_backtest']:,} units in service one year before the export of a "
         f"separate {a.test_units:,}-unit test fleet; {extra['backtest_failures']} failed within the year; "
         f"observed (Kaplan–Meier) one-year failure probability {extra['observed']:.4f}. Oracle (true hazard, "
@@ -340,9 +340,9 @@ def report(rows, extra, a) -> str:
         "Peak MiB: rise of resident memory during the fit (psutil, sampled every 5 ms). Fit time of XGBoost and "
         "scikit-survival excludes their Breslow baseline; wearcast's includes it. XGBoost and scikit-survival "
         "cannot take entry ages, so they see every row as observed from age 0. scikit-survival's booster "
-        "computes its Cox gradient with a loop over all pairs of rows (O(n²) per tree), so it is fitted with "
-        "few trees and its fit time is scaled linearly to B (per-tree cost does not change with the tree "
-        "number); its C and probabilities are those of the small model and are left out of 'best peer'.",
+        "costs many seconds per tree, growing faster than the row count, so it is fitted with few trees and "
+        "its fit time is scaled linearly to B (per-tree cost does not change with the tree number); its C "
+        "and probabilities are those of the small model and are left out of 'best peer'.",
     ]
     if "cv" in extra:
         cv = extra["cv"]
