@@ -91,3 +91,16 @@ def test_load_config_resolves_paths_and_reports_missing_files(tmp_path):
     with pytest.raises(ConfigError, match="not valid TOML"):
         load_config(path)
 
+
+
+@pytest.mark.parametrize("section,key,value", [
+    ("fleet", "renewal", "swap"),
+    ("validation", "bootstrap_metrics", "some"),
+    ("model", "choose", "neural"),
+])
+def test_words_outside_their_choices_are_refused(section, key, value):
+    from wearcast.config import config_from_dict
+    from wearcast.exceptions import ConfigError
+
+    with pytest.raises(ConfigError, match=rf"{section}\.{key} = '{value}' is not known; use one of"):
+        config_from_dict({section: {key: value}})

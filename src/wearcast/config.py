@@ -128,6 +128,7 @@ class ValidationSection:
     horizons_days: list[int] = field(default_factory=lambda: [90, 365])
     bootstrap: int = 200
     calibration_share: float = 0.25  # a candidate whose expected/observed count is off by more is not eligible
+    bootstrap_metrics: str = "concordance"  # "concordance": bootstrap the C indices only; "all": every metric
 
 
 @dataclass(frozen=True)
@@ -163,6 +164,19 @@ class Config:
             return None
         p = Path(relative)
         return p if p.is_absolute() else self.base_dir / p
+
+
+#: Keys whose value must be one of a few words: (section class, key) -> allowed values.
+_CHOICES: dict[tuple[type, str], tuple[str, ...]] = {
+    (InputSection, "shape"): ("register_log", "life_table"),
+    (InputSection, "age_unit"): ("days", "hours", "weeks", "months", "years"),
+    (FleetSection, "renewal"): ("replace", "repair"),
+    (BoostedSection, "ties"): ("efron", "breslow"),
+    (ForestSection, "mode"): ("random_forest", "bagging"),
+    (ModelSection, "choose"): ("auto", "boosted", "forest", "cox", "boosted_d1", "boosted_d2", "boosted_d3",
+                               "forest_bagging", "forest_sqrt"),
+    (ValidationSection, "bootstrap_metrics"): ("concordance", "all"),
+}
 
 
 def load_config(path: str | Path) -> Config:
@@ -201,6 +215,11 @@ def _build(cls, data: Any, source: str, where: str):
     for name, value in data.items():
         key = f"{where}.{name}" if where else name
         values[name] = _coerce(hints[name], value, source, key)
+        allowed = _CHOICES.get((cls, name))
+        if allowed is not None and values[name] not in allowed:
+            raise ConfigError(
+                f"{source}: {key} = {value!r} is not known; use one of {', '.join(repr(a) for a in allowed)}."
+            )
     try:
         return cls(**values)
     except TypeError as exc:  # pragma: no cover - dataclass construction guards

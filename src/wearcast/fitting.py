@@ -129,8 +129,9 @@ def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | N
     else:
         choice = pinned(pin, choice_input)
 
+    resampled = None if config.validation.bootstrap_metrics == "all" else ("c_harrell", "c_truncation")
     comparison = compare_models(cv, bootstrap=config.validation.bootstrap, seed=compare_seed,
-                                resampled_columns=("c_harrell", "c_truncation"))
+                                resampled_columns=resampled)
     files: dict[str, str] = {}
     for path in write_comparison(cv, out_dir, comparison):
         files[path.stem] = str(path)
@@ -152,7 +153,22 @@ def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | N
         fitted[name] = model
         _save_bundle(model, out_dir / MODELS_DIR / name, golden)
     files.update(_model_side_files(fitted, choice.name, golden, out_dir))
+    files.update(_readable_summary(fitted[choice.name], golden, out_dir))
     return FitOutcome(choice.name, choice, fitted, comparison, files)
+
+
+def _readable_summary(model, fleet: LifeTable, out_dir: Path) -> dict[str, str]:
+    """readable_rules.txt: a depth-3 tree summarising the chosen model over the fleet."""
+    from wearcast.exceptions import ModelError
+    from wearcast.models.readable import explain_with_shallow_tree
+
+    if fleet.n_rows < 2 or not fleet.covariates:
+        return {}
+    try:
+        summary = explain_with_shallow_tree(model, fleet, depth=3)
+    except ModelError:
+        return {}
+    return {"readable_rules": str(_atomic.write_text(out_dir / "readable_rules.txt", summary.text() + "\n"))}
 
 
 def _save_bundle(model, folder: Path, golden: LifeTable) -> None:

@@ -168,6 +168,7 @@ def _run_into(config: Config, registry: ModelRegistry, out: Path, run_id: str, i
         "seeds": {"model": config.model.seed},
         "chosen_model": state.fit.chosen,
         "choice_reason": state.fit.choice.reason,
+        "metrics": _plain(_choice_metrics(state.fit)),
         "champion": champion_id,
         "challenger": challenger_id,
         "model_used": champion_id if not promote else challenger_id,
@@ -182,6 +183,16 @@ def _run_into(config: Config, registry: ModelRegistry, out: Path, run_id: str, i
     _atomic.write_json(out / "timings.json", {k: round(v, 3) for k, v in timings.items()})
     return {"promote": promote, "decision": decision, "reasons": reasons, "challenger_id": challenger_id,
             "champion_id": champion_id, "model_used": manifest["model_used"], "as_of": as_of}
+
+
+def _choice_metrics(fit) -> dict:
+    """Cross-validated metrics of every candidate (the comparison table's point values)."""
+    from wearcast.selection import as_dict
+
+    comparison = fit.comparison
+    point = [c for c in comparison.columns if c == "model" or not c.endswith(("_low", "_high"))]
+    return {"candidates": as_dict(fit.choice)["candidates"],
+            "comparison": json.loads(comparison[point].to_json(orient="records"))}
 
 
 def promotion_gate(config: Config, champion, challenger) -> dict:
