@@ -6,7 +6,7 @@ from pathlib import Path
 
 import click
 
-from wearcast.cli._common import command_help, library_call
+from wearcast.cli._common import EPILOG_CAUTION, command_help, library_call
 
 
 def describe(result: dict) -> list[str]:
@@ -33,6 +33,7 @@ def describe(result: dict) -> list[str]:
                 lines.append(f"  {key[:-5].replace('_', ' '):<17} {value}")
     lines += _forecast_lines(result["stages"].get("rank", {}))
     lines.append(f"outputs are in {result['out_dir']}")
+    lines.append(EPILOG_CAUTION)
     return lines
 
 

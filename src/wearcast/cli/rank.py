@@ -6,7 +6,7 @@ from pathlib import Path
 
 import click
 
-from wearcast.cli._common import command_help, config_argument, library_call, load, out_option, workers_options
+from wearcast.cli._common import EPILOG_CAUTION, command_help, config_argument, library_call, load, out_option, workers_options
 
 
 def describe_ranking(ranked, top: int = 10) -> list[str]:
@@ -56,3 +56,4 @@ def command(config: Path, out_dir: Path | None, model_name: str | None, jobs: in
     click.echo(f"model: {state.ranked.summary.get('model')} — {state.fit.choice.reason}")
     click.echo(f"report: {summaries['report']['report_path']}")
     click.echo(f"outputs are in {out_dir}")
+    click.echo(EPILOG_CAUTION)
