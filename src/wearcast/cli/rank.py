@@ -6,7 +6,8 @@ from pathlib import Path
 
 import click
 
-from wearcast.cli._common import EPILOG_CAUTION, command_help, config_argument, library_call, load, out_option, workers_options
+from wearcast.cli._common import (EPILOG_CAUTION, command_help, config_argument, library_call, load, out_option,
+                                  workers_options)
 
 
 def describe_ranking(ranked, top: int = 10) -> list[str]:
