@@ -111,7 +111,8 @@ def check_life_table(
 def _check_no_overlap(frame: pd.DataFrame, source: str) -> None:
     if len(frame) < 2:
         return
-    order = frame.sort_values(["unit_id", "life", "entry_age", "exit_age"], kind="mergesort")
+    keys = ["unit_id", "life", "entry_age", "exit_age"]
+    order = frame[keys].sort_values(keys, kind="mergesort")  # the key columns only: no copy of the whole table
     same_life = (order["unit_id"].to_numpy()[1:] == order["unit_id"].to_numpy()[:-1]) & (
         order["life"].to_numpy()[1:] == order["life"].to_numpy()[:-1]
     )

@@ -236,7 +236,9 @@ def _sorted_log(frame: pd.DataFrame | None, date_col: str, settings: BuildSettin
     # Same-date rows are ordered by their contents, never by file position, so the
     # row that wins (and the one quarantined as a repeat) does not depend on row order.
     # Keys, most significant first: unit, date, kind rank, failure mode, readings, line.
-    order = np.lexsort((when.view(np.int64), code))
+    order = _grouped_order(code, when.view(np.int64))
+    if order is None:
+        order = np.lexsort((when.view(np.int64), code))
     c, w = code[order], when[order]
     if ((c[1:] == c[:-1]) & (w[1:] == w[:-1])).any():  # ties on (unit, date): use every key
         keys = [code, when.view(np.int64)]
@@ -275,6 +277,26 @@ def _sorted_log(frame: pd.DataFrame | None, date_col: str, settings: BuildSettin
         rows["values"] = np.column_stack([frame[c].to_numpy(dtype=float)[order][live] for c in cols]) \
             if cols else np.zeros((int(live.sum()), 0))
     return rows
+
+
+def _grouped_order(code: np.ndarray, when: np.ndarray) -> np.ndarray | None:
+    """The (unit, date) sort order in linear time when the file already lists each unit's
+    rows together in date order (the usual export); None when it does not."""
+    n = len(code)
+    if n < 2:
+        return np.arange(n)
+    same = code[1:] == code[:-1]
+    if not (when[1:] > when[:-1])[same].all():
+        return None
+    change = np.flatnonzero(~same) + 1
+    starts = np.concatenate(([0], change))
+    heads = code[starts]
+    runs = np.argsort(heads, kind="stable")
+    if (heads[runs][1:] == heads[runs][:-1]).any():
+        return None  # a unit's rows are split over several runs
+    lengths = np.diff(np.append(starts, n))[runs]
+    shift = starts[runs] - (np.cumsum(lengths) - lengths)
+    return np.arange(n) + np.repeat(shift, lengths)
 
 
 def _walk_events(ev: dict, install: np.ndarray, end: np.ndarray, renewal: str) -> tuple[dict, np.ndarray]:

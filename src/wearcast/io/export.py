@@ -106,6 +106,14 @@ def _numbers(frame: pd.DataFrame, cols, q: Quarantine, config: Config, reason: s
         frame[col] = values
 
 
+def _kept_rows(frame: pd.DataFrame | None, q: Quarantine) -> pd.DataFrame | None:
+    """The rows not quarantined (the frame itself when none were: no copy)."""
+    if frame is None:
+        return None
+    rejected = _rejected(frame, q)
+    return frame[~rejected] if rejected.any() else frame
+
+
 def _day_first(config: Config, frames: list[tuple[pd.DataFrame, str]]) -> bool | None:
     if config.input.date_format:
         return None
@@ -196,9 +204,7 @@ def _load_register_log(config: Config, as_of_override) -> Loaded:
         cascade = ~f["unit_id"].isin(good_ids).to_numpy()
         q.reject(f, cascade, "unit_id", "unit's register row was rejected")
 
-    reg_ok = reg[~_rejected(reg, q)]
-    ev_ok = ev[~_rejected(ev, q)]
-    rd_ok = None if rd is None else rd[~_rejected(rd, q)]
+    reg_ok, ev_ok, rd_ok = _kept_rows(reg, q), _kept_rows(ev, q), _kept_rows(rd, q)
     reg = ev = rd = None  # the working copies are done with; the raw tables stay for the quarantine
     backtest = as_of_override is not None
     if backtest:
