@@ -105,7 +105,13 @@ def check_life_table(
         out[col] = values.astype(float)
     _check_no_overlap(out, source)
     ordered = list(CORE_COLUMNS) + [c for c in out.columns if c not in CORE_COLUMNS]
-    return out[ordered].reset_index(drop=True)
+    # Reorder / renumber only when needed: each is a full copy of a table that can hold millions of rows.
+    if list(out.columns) != ordered:
+        out = out[ordered]
+    if not (isinstance(out.index, pd.RangeIndex) and out.index.name is None
+            and out.index.equals(pd.RangeIndex(len(out)))):
+        out = out.reset_index(drop=True)
+    return out
 
 
 def _check_no_overlap(frame: pd.DataFrame, source: str) -> None:

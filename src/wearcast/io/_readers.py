@@ -215,9 +215,17 @@ def _check_header(path: Path, header: list[str], line: int) -> None:
 def _finish(path, frame, header, lines, malformed, sep: str) -> RawTable:
     if not any(isinstance(t, pd.CategoricalDtype) for t in frame.dtypes):
         frame = frame.fillna("").astype(str) if len(frame) else frame.astype(object)
-    frame["_source"] = path.name
+    n = len(frame)
+    if any(isinstance(t, pd.CategoricalDtype) for t in frame.dtypes):  # compact: one code per row
+        codes, problems = pd.factorize(np.asarray(malformed, dtype=object))
+        source = pd.Categorical.from_codes(np.zeros(n, dtype=np.int8), categories=[path.name])
+        problem = pd.Categorical.from_codes(codes, categories=problems) if len(problems) \
+            else pd.Categorical([], categories=[""])
+    else:
+        source, problem = path.name, pd.Series(np.asarray(malformed, dtype=object), index=frame.index)
+    frame["_source"] = source
     frame["_line"] = pd.Series(np.asarray(lines, dtype="int64"), index=frame.index)
-    frame["_malformed"] = pd.Series(np.asarray(malformed, dtype=object), index=frame.index)
+    frame["_malformed"] = problem
     return RawTable(path=path, frame=frame.reset_index(drop=True), columns=tuple(header), delimiter=sep)
 
 
@@ -286,7 +294,12 @@ def _read_csv_fast(path: Path, body: bytes, sep: str, compact: bool) -> RawTable
         return None
     rows = filled[1:]
     counts = n_fields[rows]
-    frame = pd.DataFrame({name: grid[i].iloc[rows].reset_index(drop=True) for i, name in enumerate(header)})
+    if len(rows) and rows[-1] - rows[0] == len(rows) - 1:  # no blank line inside: a slice, not a take
+        pick = slice(int(rows[0]), int(rows[-1]) + 1)
+    else:
+        pick = rows
+    frame = pd.DataFrame({name: grid[i].iloc[pick].reset_index(drop=True) for i, name in enumerate(header)})
+    del grid
     if compact:
         for name in header:
             col = frame[name]
