@@ -162,3 +162,13 @@ def test_concordance_only_bootstrap_matches_full_bootstrap_and_spreads_the_rest(
     se = per_fold.std(ddof=1) / np.sqrt(len(per_fold))
     assert ridge["auc_180d_high"] - ridge["auc_180d"] == pytest.approx(1.959963984540054 * se)
     assert quick.attrs["interval_method"]["auc_180d"].startswith("normal interval")
+
+
+def test_parallel_folds_give_the_same_results():
+    # Seeds are drawn up front, so the number of worker processes changes nothing.
+    cox = pytest.importorskip("wearcast.models.cox")
+    table = _rossi_table()
+    models = {"cox": cox.CoxBaseline(penalizer=0.0), "ridge": cox.CoxBaseline(penalizer=5.0)}
+    serial = cross_validate(models, table, k=3, seed=2, horizons_days=[90, 180], jobs=1)
+    parallel = cross_validate(models, table, k=3, seed=2, horizons_days=[90, 180], jobs=2)
+    pd.testing.assert_frame_equal(serial.per_fold, parallel.per_fold)

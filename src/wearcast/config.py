@@ -129,6 +129,7 @@ class ValidationSection:
     bootstrap: int = 200
     calibration_share: float = 0.25  # a candidate whose expected/observed count is off by more is not eligible
     bootstrap_metrics: str = "concordance"  # "concordance": bootstrap the C indices only; "all": every metric
+    jobs: int = 0  # worker processes for the cross-validation fits; 0 = all cores (results do not depend on it)
 
 
 @dataclass(frozen=True)

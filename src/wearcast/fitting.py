@@ -115,7 +115,8 @@ def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | N
     candidates = {name: make_model(name, config, seed) for name in names}
 
     horizons = sorted({int(h) for h in config.validation.horizons_days})
-    cv = cross_validate(candidates, table, k=config.validation.folds, seed=cv_seed, horizons_days=horizons)
+    cv = cross_validate(candidates, table, k=config.validation.folds, seed=cv_seed, horizons_days=horizons,
+                        jobs=config.validation.jobs)
     summary = cv.summary.set_index("model")
     main_h = max(horizons)
     choice_input = pd.DataFrame({

@@ -25,6 +25,7 @@ from typing import Mapping, Sequence
 
 import numpy as np
 import pandas as pd
+from joblib import Parallel, delayed
 
 from wearcast import _atomic
 from wearcast._metrics_concordance import truncated_concordance_counts
@@ -205,6 +206,7 @@ def cross_validate(
     *,
     tau_days: float | None = None,
     brier_points: int = 20,
+    jobs: int = 1,
 ) -> CVResult:
     """Fit each model's ``unfitted_copy`` on the training units of each of ``k``
     unit-grouped folds and score the held-out units' episodes.
@@ -213,7 +215,9 @@ def cross_validate(
     ``horizons_days``: calibration and AUC windows (days after the episode's
     entry). ``tau_days``: Uno's τ; by default chosen once from all episodes
     (:func:`wearcast.metrics.choose_tau`). Seeds for the folds and for every
-    (fold, model) refit are drawn up front from ``numpy.random.default_rng(seed)``.
+    (fold, model) refit are drawn up front from ``numpy.random.default_rng(seed)``,
+    so ``jobs`` (parallel worker processes for the fits; 0 = all cores) never
+    changes a result.
     """
     if not models:
         raise ValueError("cross_validate needs at least one model")
@@ -234,6 +238,8 @@ def cross_validate(
     brier_times = np.unique(np.linspace(min(low, tau_days * 0.5), tau_days, brier_points).round(1))
     scores: dict[str, list[FoldScores]] = {name: [] for name in names}
     rows = []
+    held_out = []
+    tasks = []
     for i, (train_rows, test_rows) in enumerate(folds):
         in_test = np.zeros(table.n_rows, bool)
         in_test[test_rows] = True
@@ -241,17 +247,23 @@ def cross_validate(
         train_ep = episodes.subset(~in_test[episodes.rows])
         train_table = table.take_rows(train_rows)
         X_test = table.X.iloc[test_ep.rows].reset_index(drop=True)
+        held_out.append((test_ep, train_ep))
         for j, name in enumerate(names):
-            model = models[name].unfitted_copy(int(model_seeds[i, j]))
-            model.fit(train_table)
+            tasks.append(delayed(_fit_and_predict)(models[name], int(model_seeds[i, j]), train_table, X_test,
+                                                   test_ep.entry, horizons, brier_times))
+    n_jobs = -1 if jobs == 0 else max(1, int(jobs))
+    results = iter(Parallel(n_jobs=n_jobs)(tasks) if n_jobs != 1 else [t[0](*t[1], **t[2]) for t in tasks])
+    for i, (test_ep, train_ep) in enumerate(held_out):
+        for name in names:
+            risk, prob, survival = next(results)
             s = FoldScores(
                 entry=test_ep.entry,
                 exit=test_ep.exit,
                 event=test_ep.event,
                 units=test_ep.unit_id,
-                risk=np.asarray(model.risk_score(X_test), float),
-                prob={h: np.asarray(model.fail_probability(X_test, test_ep.entry, h), float) for h in horizons},
-                survival=np.asarray(model.survival(X_test, brier_times), float),
+                risk=risk,
+                prob=prob,
+                survival=survival,
                 train_exit=train_ep.exit,
                 train_event=train_ep.event,
                 train_window=train_ep.exit - train_ep.entry,
@@ -264,6 +276,16 @@ def cross_validate(
     summary = _summarise(per_fold, names, columns)
     notes = [IPCW_ENTRY_NOTE, f"Uno's C is restricted to failures before age {tau_days:g} days (tau)."]
     return CVResult(names, k, seed, horizons, tau_days, brier_times, per_fold, summary, scores, folds, notes)
+
+
+def _fit_and_predict(template: SurvivalModel, seed: int, train_table: LifeTable, X_test: pd.DataFrame,
+                     entry_test: np.ndarray, horizons, brier_times: np.ndarray):
+    """One (fold, model) cell: fit a fresh copy on the training units, predict the held-out ones."""
+    model = template.unfitted_copy(seed)
+    model.fit(train_table)
+    risk = np.asarray(model.risk_score(X_test), float)
+    prob = {h: np.asarray(model.fail_probability(X_test, entry_test, h), float) for h in horizons}
+    return risk, prob, np.asarray(model.survival(X_test, brier_times), float)
 
 
 def _summarise(per_fold: pd.DataFrame, names: list[str], columns: list[str]) -> pd.DataFrame:
