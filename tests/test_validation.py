@@ -172,3 +172,5 @@ def test_parallel_folds_give_the_same_results():
     serial = cross_validate(models, table, k=3, seed=2, horizons_days=[90, 180], jobs=1)
     parallel = cross_validate(models, table, k=3, seed=2, horizons_days=[90, 180], jobs=2)
     pd.testing.assert_frame_equal(serial.per_fold, parallel.per_fold)
+    pd.testing.assert_frame_equal(compare_models(serial, bootstrap=8, seed=3, jobs=1),
+                                  compare_models(serial, bootstrap=8, seed=3, jobs=2))

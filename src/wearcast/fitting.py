@@ -26,6 +26,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+from joblib import Parallel, delayed
 
 from wearcast import _atomic
 from wearcast.config import Config
@@ -62,8 +63,15 @@ def _candidate_for(name: str, config: Config) -> str:
     )
 
 
-def make_model(name: str, config: Config, seed: int) -> SurvivalModel:
-    """An unfitted model for a candidate name, with the config's settings."""
+#: Inside the selection's outer folds, boosted candidates choose B by at most this many
+#: inner folds (the final fit uses [model.boosted] folds): nested CV costs folds x inner folds fits.
+SELECTION_INNER_FOLDS = 3
+
+
+def make_model(name: str, config: Config, seed: int, *, inner_folds: int | None = None) -> SurvivalModel:
+    """An unfitted model for a candidate name, with the config's settings.
+
+    ``inner_folds`` caps the folds boosted trees use to choose their number of trees."""
     if name == "cox":
         from wearcast.models.cox import CoxBaseline
 
@@ -73,6 +81,8 @@ def make_model(name: str, config: Config, seed: int) -> SurvivalModel:
 
         depth = int(name.removeprefix("boosted_d"))
         section = dataclasses.replace(config.model.boosted, tree_depth=depth, max_leaves=None)
+        if inner_folds is not None:
+            section = dataclasses.replace(section, folds=min(section.folds, inner_folds))
         return BoostedSurvivalTrees.from_config(section, seed)
     if name in ("forest_bagging", "forest_sqrt"):
         from wearcast.models.forest import SurvivalForest
@@ -80,7 +90,7 @@ def make_model(name: str, config: Config, seed: int) -> SurvivalModel:
         mode = "bagging" if name == "forest_bagging" else "random_forest"
         section = dataclasses.replace(config.model.forest, mode=mode)
         return SurvivalForest.from_config(section, seed)
-    return make_model(_candidate_for(name, config), config, seed)
+    return make_model(_candidate_for(name, config), config, seed, inner_folds=inner_folds)
 
 
 @dataclass
@@ -112,7 +122,7 @@ def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | N
     else:
         names, note = ["cox", pin], None
     names = list(dict.fromkeys(["cox", *names]))
-    candidates = {name: make_model(name, config, seed) for name in names}
+    candidates = {name: make_model(name, config, seed, inner_folds=SELECTION_INNER_FOLDS) for name in names}
 
     horizons = sorted({int(h) for h in config.validation.horizons_days})
     cv = cross_validate(candidates, table, k=config.validation.folds, seed=cv_seed, horizons_days=horizons,
@@ -132,7 +142,7 @@ def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | N
 
     resampled = None if config.validation.bootstrap_metrics == "all" else ("c_harrell", "c_truncation")
     comparison = compare_models(cv, bootstrap=config.validation.bootstrap, seed=compare_seed,
-                                resampled_columns=resampled)
+                                resampled_columns=resampled, jobs=config.validation.jobs)
     files: dict[str, str] = {}
     for path in write_comparison(cv, out_dir, comparison):
         files[path.stem] = str(path)
@@ -147,11 +157,15 @@ def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | N
 
     to_fit = list(dict.fromkeys([choice.name, *config_model_names(config)]))
     fit_seeds = np.random.default_rng(fit_seed).integers(0, 2**31 - 1, size=len(to_fit))
-    fitted: dict[str, SurvivalModel] = {}
     golden = table.in_service() if table.in_service().n_rows else table
-    for name, s in zip(to_fit, fit_seeds):
-        model = make_model(name, config, int(s)).fit(table)
-        fitted[name] = model
+    n_jobs = -1 if config.validation.jobs == 0 else max(1, config.validation.jobs)
+    models = [make_model(name, config, int(s)) for name, s in zip(to_fit, fit_seeds)]
+    if n_jobs == 1 or len(models) == 1:
+        done = [m.fit(table) for m in models]
+    else:
+        done = Parallel(n_jobs=n_jobs)(delayed(_fit)(m, table) for m in models)
+    fitted: dict[str, SurvivalModel] = dict(zip(to_fit, done))
+    for name, model in fitted.items():
         _save_bundle(model, out_dir / MODELS_DIR / name, golden)
     files.update(_model_side_files(fitted, choice.name, golden, out_dir))
     files.update(_readable_summary(fitted[choice.name], golden, out_dir))
@@ -170,6 +184,10 @@ def _readable_summary(model, fleet: LifeTable, out_dir: Path) -> dict[str, str]:
     except ModelError:
         return {}
     return {"readable_rules": str(_atomic.write_text(out_dir / "readable_rules.txt", summary.text() + "\n"))}
+
+
+def _fit(model: SurvivalModel, table: LifeTable) -> SurvivalModel:
+    return model.fit(table)
 
 
 def _save_bundle(model, folder: Path, golden: LifeTable) -> None:

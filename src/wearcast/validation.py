@@ -317,6 +317,15 @@ def _concordance_only(s: FoldScores, horizons_days, tau_days: float, brier_times
             "c_truncation": truncated_concordance_counts(s.entry, s.exit, s.event, s.risk)["c"]}
 
 
+def _bootstrap_frame(folds, draws_idx, bootstrap, evaluate, horizons, tau, brier_times, columns) -> pd.DataFrame:
+    """One model's metric values on every bootstrap resample (rows) of the held-out units."""
+    return pd.DataFrame([
+        _combine([evaluate(_resampled(s, draws_idx[f][b]), horizons, tau, brier_times)
+                  for f, s in enumerate(folds)], columns)
+        for b in range(bootstrap)
+    ], columns=columns)
+
+
 def _fold_spread_intervals(result: CVResult, name: str, baseline: str | None, columns, level: float) -> dict:
     """Normal intervals from per-fold values (and per-fold paired differences)."""
     from scipy.stats import norm
@@ -376,6 +385,7 @@ def compare_models(
     baseline: str = BASELINE,
     level: float = 0.95,
     resampled_columns: Sequence[str] | None = None,
+    jobs: int = 1,
 ) -> pd.DataFrame:
     """One row per model: every metric, its bootstrap interval and the paired
     difference against ``baseline``.
@@ -394,6 +404,7 @@ def compare_models(
     other metrics then get a normal interval from the spread over folds (mean
     ± z·se, and for ``_vs_cox`` the per-fold paired differences). The
     attribute ``interval_method`` of the result says which is which.
+    ``jobs``: worker processes, one model each (0 = all cores); no result depends on it.
     """
     all_columns = metric_columns(result.horizons_days, result.tau_days)
     columns = all_columns if resampled_columns is None else [c for c in all_columns if c in set(resampled_columns)]
@@ -404,15 +415,17 @@ def compare_models(
     # the same resamples for every model (paired differences)
     draws_idx = [unit_resamples(fold.units, bootstrap, int(fold_seeds[f]))
                  for f, fold in enumerate(result.scores[result.models[0]])]
-    point, boot = {}, {}
-    for name in result.models:
-        folds = result.scores[name]
-        point[name] = result.summary.set_index("model").loc[name, columns].astype(float).to_dict()
-        boot[name] = pd.DataFrame([
-            _combine([evaluate(_resampled(s, draws_idx[f][b]), result.horizons_days, result.tau_days,
-                               result.brier_times) for f, s in enumerate(folds)], columns)
-            for b in range(bootstrap)
-        ], columns=columns)
+    point = {name: result.summary.set_index("model").loc[name, columns].astype(float).to_dict()
+             for name in result.models}
+    n_jobs = -1 if jobs == 0 else max(1, int(jobs))
+    frames = Parallel(n_jobs=n_jobs)(
+        delayed(_bootstrap_frame)(result.scores[name], draws_idx, bootstrap, evaluate, result.horizons_days,
+                                  result.tau_days, result.brier_times, columns)
+        for name in result.models
+    ) if n_jobs != 1 else [
+        _bootstrap_frame(result.scores[name], draws_idx, bootstrap, evaluate, result.horizons_days,
+                         result.tau_days, result.brier_times, columns) for name in result.models]
+    boot = dict(zip(result.models, frames))
     has_base = baseline in result.models
     rows = []
     for name in result.models:
