@@ -120,6 +120,10 @@ def test_outcomes_match_the_failure_log(scenario):
         assert row["lift_top20_365d_vs_random"] == pytest.approx(top["failed"].mean() / share)
     assert row["lift_top20_365d_vs_cox"] == pytest.approx(1.0) or np.isnan(row["lift_top20_365d_vs_cox"])
     assert row["expected_failures_365d_low"] <= row["expected_failures_365d"] <= row["expected_failures_365d_high"]
+    inside = row["expected_failures_365d_low"] <= row["observed_failures_365d"] <= row["expected_failures_365d_high"]
+    assert row["observed_inside_interval_365d"] == inside
+    summary = result.summary.set_index("model").loc["cox"]
+    assert summary["origins_observed_inside_interval_365d"] == int(inside)
 
 
 def test_window_outcomes_by_hand():
