@@ -68,7 +68,7 @@ from wearcast.io import load_export  # noqa: E402
 from wearcast.lifetable import LifeTable  # noqa: E402
 from wearcast.metrics import harrell_c, truncation_aware_c  # noqa: E402
 from wearcast.scenario import generate_scenario  # noqa: E402
-from wearcast.validation import grouped_folds, score_episodes  # noqa: E402
+from wearcast.validation import grouped_folds, score_episodes, split_fold  # noqa: E402
 
 SEED = 20260701
 K_OUTER = 5
@@ -320,11 +320,7 @@ def run_dataset(ds: Dataset, config, seed: int, k: int = K_OUTER) -> dict:
     rows = []
     t0 = time.perf_counter()
     for i, (train_rows, test_rows) in enumerate(folds):
-        in_test = np.zeros(table.n_rows, bool)
-        in_test[test_rows] = True
-        test_ep = episodes.subset(in_test[episodes.rows])
-        train_ep = episodes.subset(~in_test[episodes.rows])
-        train_table = table.take_rows(train_rows)
+        train_table, test_ep, train_ep = split_fold(table, episodes, train_rows, test_rows)
         with tempfile.TemporaryDirectory() as tmp, warnings.catch_warnings():
             warnings.simplefilter("ignore")
             tw = time.perf_counter()

@@ -117,6 +117,14 @@ def grouped_folds(table: LifeTable, k: int, seed: int) -> list[tuple[np.ndarray,
     return [(np.flatnonzero(fold != i), np.flatnonzero(fold == i)) for i in range(k)]
 
 
+def split_fold(table: LifeTable, episodes: Episodes, train_rows: np.ndarray, test_rows: np.ndarray):
+    """``(training table, held-out episodes, training episodes)`` of one fold."""
+    in_test = np.zeros(table.n_rows, bool)
+    in_test[test_rows] = True
+    return (table.take_rows(train_rows), episodes.subset(in_test[episodes.rows]),
+            episodes.subset(~in_test[episodes.rows]))
+
+
 # -- cross-validation ------------------------------------------------------------------
 @dataclass
 class FoldScores:
@@ -241,11 +249,7 @@ def cross_validate(
     held_out = []
     tasks = []
     for i, (train_rows, test_rows) in enumerate(folds):
-        in_test = np.zeros(table.n_rows, bool)
-        in_test[test_rows] = True
-        test_ep = episodes.subset(in_test[episodes.rows])
-        train_ep = episodes.subset(~in_test[episodes.rows])
-        train_table = table.take_rows(train_rows)
+        train_table, test_ep, train_ep = split_fold(table, episodes, train_rows, test_rows)
         X_test = table.X.iloc[test_ep.rows].reset_index(drop=True)
         held_out.append((test_ep, train_ep))
         for j, name in enumerate(names):
