@@ -468,3 +468,20 @@ def test_no_unfilled_template_fields_in_the_page(built):
     text = re.sub(r'src="data:[^"]*"', "", page)
     text = re.sub(r"<style>.*?</style>", "", text, flags=re.S)
     assert not re.search(r"\{[A-Za-z_][A-Za-z0-9_]*\}", text), "a caption still shows a {placeholder}"
+
+
+def test_monthly_changes_read_as_sentences_and_a_table(tmp_path):
+    # The shape wearcast.monthly.month_changes writes.
+    changes = {
+        "previous_run": "2026-10-31_abc", "probability_column": "p_fail_365d",
+        "entered_top": ["U-7"], "left_top": [],
+        "largest_movers": [{"unit_id": "U-7", "before": 0.05, "now": 0.12, "change": 0.07,
+                            "drivers_before": ["age high (+0.10)"],
+                            "drivers_now": ["vibration_mm_s high (+0.50)", "age high (+0.12)"]}],
+    }
+    html_text, _ = render_report(ReportInputs(as_of="2026-11-30", monthly_changes=changes))
+    text = re.sub(r"<[^>]+>", " ", html_text)
+    assert "Entered the top list" in text and "U-7" in text
+    assert "vibration_mm_s high (+0.50); age high (+0.12)" in text
+    assert "+7.0" in text and "12.0 %" in text
+    assert "['" not in text

@@ -349,10 +349,40 @@ def drivers(inputs) -> Section:
 
 # -- 5. month over month -----------------------------------------------------------
 
+def _month_over_month(monthly: dict) -> list[str]:
+    """The monthly run's changes (wearcast.monthly.month_changes) in planners' words."""
+    column = str(monthly.get("probability_column", ""))
+    horizon = column.removeprefix("p_fail_").removesuffix("d")
+    within = f"within {horizon} days" if horizon.isdigit() else "within the horizon"
+    parts = [h.paragraph(f"Compared with the previous run ({monthly.get('previous_run', 'unknown')}); "
+                         f"probabilities of failure {within}.")]
+    for key, label in (("entered_top", "Entered the top list"), ("left_top", "Left the top list")):
+        units = monthly.get(key) or []
+        parts.append(f"<h3>{h.esc(label)}</h3>" + h.paragraph(", ".join(map(str, units)) if units else "none"))
+    movers = pd.DataFrame(monthly.get("largest_movers") or [])
+    if not movers.empty:
+        for col in ("drivers_before", "drivers_now"):
+            if col in movers:
+                movers[col] = movers[col].map(lambda v: "; ".join(v) if isinstance(v, (list, tuple)) else v)
+        if "change" in movers:
+            movers["change_points"] = 100.0 * movers["change"].astype(float)
+        cols = [h.Column("Unit", "unit_id", numeric=False),
+                h.Column("Before", "before", h.fmt_percent, numeric=True),
+                h.Column("Now", "now", h.fmt_percent, numeric=True),
+                h.Column("Change (points)", "change_points", lambda v: f"{float(v):+.1f}", numeric=True),
+                h.Column("Main drivers before", "drivers_before", numeric=False),
+                h.Column("Main drivers now", "drivers_now", numeric=False)]
+        cols = [c for c in cols if c.field in movers.columns]
+        parts.append("<h3>Largest movers</h3>" + h.table(movers, cols))
+    return parts
+
+
 def changes(inputs) -> Section:
     parts, figures = [], {}
     monthly = inputs.monthly_changes
-    if monthly:
+    if monthly and "largest_movers" in monthly:
+        parts += _month_over_month(monthly)
+    elif monthly:
         for key, value in monthly.items():
             title = str(key).replace("_", " ").capitalize()
             if isinstance(value, pd.DataFrame) or (isinstance(value, list) and value and isinstance(value[0], dict)):
