@@ -28,10 +28,12 @@ With ``d = 1`` the two agree. Derivatives are taken with respect to
 what gradient-boosting needs (it is >= 0 because the loss is convex).
 
 Cost: :func:`prepare_risk_sets` sorts once (O(n log n)); every loss /
-gradient call afterwards is O(n): risk-set sums are tail sums over rows sorted
-by exit minus tail sums over rows sorted by entry, and each row's sum over the
-failure ages it is at risk for is a cumulative sum over failure ages read at
-its exit minus the same read at its entry. Strata are folded into one integer
+gradient call afterwards is O(n + m): each row is at risk for a contiguous run
+of failure groups (those after its entry key up to its exit key), so the
+risk-set sums are a difference array over the m groups (two weighted
+``bincount`` calls and a cumulative sum, no gathers over the n rows), and each
+row's sum over the failure ages it is at risk for is a cumulative sum over
+failure groups read at its exit minus the same read at its entry. Strata are folded into one integer
 key ``(stratum, age rank)`` so no loop over strata or failure ages is needed.
 """
 
@@ -56,10 +58,6 @@ class RiskSets:
     ties: str
     weights: np.ndarray  # (n,) case weights
     event: np.ndarray  # (n,) bool
-    order_exit: np.ndarray  # (n,) rows sorted by (stratum, exit)
-    order_entry: np.ndarray  # (n,) rows sorted by (stratum, entry)
-    fail_pos_exit: np.ndarray  # (m,) first sorted-by-exit position with exit key >= failure key
-    fail_pos_entry: np.ndarray  # (m,) first sorted-by-entry position with entry key >= failure key
     row_fail_exit: np.ndarray  # (n,) number of failure keys <= the row's exit key
     row_fail_entry: np.ndarray  # (n,) number of failure keys <= the row's entry key
     event_rows: np.ndarray  # (n_events,) failing rows grouped by failure key
@@ -139,11 +137,7 @@ def prepare_risk_sets(
     entry_key = stratum * span + inverse[:n].astype(np.int64)
     exit_key = stratum * span + inverse[n:].astype(np.int64)
 
-    order_exit = np.argsort(exit_key, kind="mergesort")
-    order_entry = np.argsort(entry_key, kind="mergesort")
     fail_keys = np.unique(exit_key[event])
-    fail_pos_exit = np.searchsorted(exit_key[order_exit], fail_keys, side="left")
-    fail_pos_entry = np.searchsorted(entry_key[order_entry], fail_keys, side="left")
     row_fail_exit = np.searchsorted(fail_keys, exit_key, side="right")
     row_fail_entry = np.searchsorted(fail_keys, entry_key, side="right")
 
@@ -163,10 +157,6 @@ def prepare_risk_sets(
         ties=ties,
         weights=weights,
         event=event,
-        order_exit=order_exit,
-        order_entry=order_entry,
-        fail_pos_exit=fail_pos_exit,
-        fail_pos_entry=fail_pos_entry,
         row_fail_exit=row_fail_exit,
         row_fail_entry=row_fail_entry,
         event_rows=event_rows,
@@ -181,13 +171,6 @@ def prepare_risk_sets(
     )
 
 
-def _tail_sums(values: np.ndarray) -> np.ndarray:
-    """``out[k] = values[k:].sum()``, shape (len+1,) with a trailing 0."""
-    out = np.zeros(values.size + 1)
-    out[:-1] = np.cumsum(values[::-1])[::-1]
-    return out
-
-
 def _pieces(rs: RiskSets, eta: np.ndarray, *, derivatives: bool):
     """Shared work: shifted risks, per-group sums and the loss."""
     eta = np.asarray(eta, dtype=float).ravel()
@@ -197,9 +180,13 @@ def _pieces(rs: RiskSets, eta: np.ndarray, *, derivatives: bool):
         raise ValueError("eta contains non-finite values")
     shift = float(eta.max()) if eta.size else 0.0
     r = rs.weights * np.exp(eta - shift)  # (n,) w_i exp(eta_i - shift)
-    # S per failure group: at-risk rows = exit key >= t minus entry key >= t.
-    S = _tail_sums(r[rs.order_exit])[rs.fail_pos_exit] - _tail_sums(r[rs.order_entry])[rs.fail_pos_entry]
-    m = S.size
+    # S per failure group: row i is at risk for the groups g with
+    # row_fail_entry[i] <= g < row_fail_exit[i]; a difference array over the m groups
+    # (two bincounts into m + 1 bins) avoids gathers over the n rows.
+    m = rs.group_weight.size
+    bounds = np.bincount(rs.row_fail_entry, weights=r, minlength=m + 1)
+    bounds -= np.bincount(rs.row_fail_exit, weights=r, minlength=m + 1)
+    S = np.cumsum(bounds[:m])
     E = np.bincount(rs.event_group, weights=r[rs.event_rows], minlength=m)
     # Every failing row is in its own risk set, so S >= E; clamp rounding.
     S = np.maximum(S, E)
