@@ -274,3 +274,21 @@ def test_delayed_entry_brings_one_year_probability_to_the_truth(tmp_path_factory
     assert error["delayed_entry"] < error["entry_zero"], (truth_mean, mean_p)
     assert error["delayed_entry"] <= 0.10, (truth_mean, mean_p)
     assert mean_p["entry_zero"] < truth_mean * 0.92, (truth_mean, mean_p)
+
+
+def test_category_codes_match_the_text_path():
+    # The fast path for pandas categoricals must give the codes the text path gives,
+    # including missing values and a level the model never saw (both NaN).
+    import numpy as np
+    import pandas as pd
+
+    from wearcast.models._boost_objective import encode_covariates
+
+    levels = {"maker": ["Brannick", "Corvale", "Ostrel"]}
+    text = pd.Series(["Ostrel", None, "Corvale", "Unseen", "Brannick", "Ostrel"], dtype=object)
+    as_text = pd.DataFrame({"maker": text, "x": np.arange(6.0)})
+    as_category = pd.DataFrame({"maker": text.astype("category"), "x": np.arange(6.0)})
+    a = encode_covariates(as_text, ("maker", "x"), levels)
+    b = encode_covariates(as_category, ("maker", "x"), levels)
+    np.testing.assert_array_equal(a, b)
+    assert np.isnan(a[1, 0]) and np.isnan(a[3, 0]) and a[0, 0] == 2.0

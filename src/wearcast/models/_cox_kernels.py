@@ -230,10 +230,14 @@ def _gradient_hessian(rs: RiskSets, out: dict) -> tuple[np.ndarray, np.ndarray]:
     cum_a = np.concatenate([[0.0], np.cumsum(out["a"])])
     cum_b = np.concatenate([[0.0], np.cumsum(out["b"])])
     # Sum over the failure ages each row is at risk for: entry < t <= exit.
-    A = cum_a[rs.row_fail_exit] - cum_a[rs.row_fail_entry]
-    B = cum_b[rs.row_fail_exit] - cum_b[rs.row_fail_entry]
-    grad = r * A
-    hess = r * A - r * r * B
+    A = cum_a[rs.row_fail_exit]
+    A -= cum_a[rs.row_fail_entry]
+    B = cum_b[rs.row_fail_exit]
+    B -= cum_b[rs.row_fail_entry]
+    grad = np.multiply(r, A, out=A)  # r * A
+    B *= r
+    B *= r
+    hess = np.subtract(grad, B, out=B)  # r * A - r^2 * B
     grad[rs.event_rows] -= rs.weights[rs.event_rows]
     if rs.ties == "efron" and "a2" in out:
         # A failing row's own term: d/d eta_j of -(k/d) E carries an extra (1 - k/d).
