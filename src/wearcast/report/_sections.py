@@ -357,9 +357,11 @@ def _month_over_month(monthly: dict) -> list[str]:
     parts = [h.paragraph(f"Compared with the previous run ({monthly.get('previous_run', 'unknown')}); "
                          f"probabilities of failure {within}.")]
     for key, label in (("entered_top", "Entered the top list"), ("left_top", "Left the top list")):
-        units = monthly.get(key) or []
+        units = monthly.get(key)
+        units = [] if units is None else list(units)
         parts.append(f"<h3>{h.esc(label)}</h3>" + h.paragraph(", ".join(map(str, units)) if units else "none"))
-    movers = pd.DataFrame(monthly.get("largest_movers") or [])
+    movers = monthly.get("largest_movers")
+    movers = movers.copy() if isinstance(movers, pd.DataFrame) else pd.DataFrame(list(movers or []))
     if not movers.empty:
         for col in ("drivers_before", "drivers_now"):
             if col in movers:
@@ -380,7 +382,7 @@ def _month_over_month(monthly: dict) -> list[str]:
 def changes(inputs) -> Section:
     parts, figures = [], {}
     monthly = inputs.monthly_changes
-    if monthly and "largest_movers" in monthly:
+    if monthly and "previous_run" in monthly:  # the shape wearcast.monthly.month_changes writes
         parts += _month_over_month(monthly)
     elif monthly:
         for key, value in monthly.items():
