@@ -434,3 +434,12 @@ def test_episode_forest_same_for_one_and_two_workers_on_the_scenario(scenario_ta
     np.testing.assert_array_equal(one.risk_score(table.X), two.risk_score(table.X))
     np.testing.assert_array_equal(one.oob_risk_, two.oob_risk_)
     assert one.oob_curve_.equals(two.oob_curve_)
+
+
+def test_grow_on_comes_from_the_config():
+    from wearcast.config import config_from_dict
+    from wearcast.models.forest import SurvivalForest
+
+    section = config_from_dict({"model": {"forest": {"grow_on": "rows"}}}).model.forest
+    assert SurvivalForest.from_config(section, seed=1).grow_on == "rows"
+    assert SurvivalForest.from_config(config_from_dict({}).model.forest, seed=1).grow_on == "episodes"

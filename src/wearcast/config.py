@@ -98,6 +98,7 @@ class ForestSection:
     min_events_per_leaf: int = 5
     max_depth: int = 12
     time_grid_points: int = 200
+    grow_on: str = "episodes"  # choose splits on one point per life episode ("episodes") or on every row ("rows")
 
 
 @dataclass(frozen=True)
@@ -174,6 +175,7 @@ _CHOICES: dict[tuple[type, str], tuple[str, ...]] = {
     (FleetSection, "renewal"): ("replace", "repair"),
     (BoostedSection, "ties"): ("efron", "breslow"),
     (ForestSection, "mode"): ("random_forest", "bagging"),
+    (ForestSection, "grow_on"): ("episodes", "rows"),
     (ModelSection, "choose"): ("auto", "boosted", "forest", "cox", "boosted_d1", "boosted_d2", "boosted_d3",
                                "forest_bagging", "forest_sqrt"),
     (ValidationSection, "bootstrap_metrics"): ("concordance", "all"),

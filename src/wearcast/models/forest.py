@@ -138,7 +138,8 @@ class SurvivalForest(SurvivalModel):
     def from_config(cls, section, seed: int, n_jobs: int = 1) -> "SurvivalForest":
         """Build from a :class:`wearcast.config.ForestSection`."""
         return cls(section.mode, section.n_trees, section.predictors_per_split, section.min_events_per_leaf,
-                   section.max_depth, section.time_grid_points, seed=seed, n_jobs=n_jobs)
+                   section.max_depth, section.time_grid_points, seed=seed, n_jobs=n_jobs,
+                   grow_on=getattr(section, "grow_on", "episodes"))
 
     def settings(self) -> dict:
         return {"mode": self.mode, "n_trees": self.n_trees, "predictors_per_split": self.predictors_per_split,
