@@ -168,7 +168,7 @@ def test_row_order_changes_nothing(tmp_path_factory, export, rnd):
         rnd.shuffle(rows)
     try:
         a, _ = _load(tmp, export, "a")
-    except DataError as exc:
+    except DataError:
         with pytest.raises(DataError):
             _load(tmp, (*shuffled, records_start, renewal), "b")
         return

@@ -21,13 +21,12 @@ import pandas as pd
 import pytest
 
 from wearcast import CAUTION, LifeTable, _atomic
-from wearcast.report import (FIGURES_DIR, REPORT_FILE, ReportInputs, build_report, render_report,
+from wearcast.report import (FIGURES_DIR, ReportInputs, build_report, render_report,
                              report_inputs_from_run_folder)
 from wearcast.report import _curves
 
 
 # -- fixtures shaped like the contracts (invented values) ----------------------------------
-from wearcast.report import ReportInputs
 
 
 def ranked_units(n: int = 40, seed: int = 3) -> pd.DataFrame:

@@ -20,7 +20,6 @@
 from __future__ import annotations
 
 import dataclasses
-import json
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -42,13 +41,11 @@ MODELS_DIR = "models"
 
 def config_model_names(config: Config) -> list[str]:
     """Map ``[model] fit`` entries (boosted, forest, cox) to candidate names."""
-    out = []
-    for name in config.model.fit:
-        out.append(_candidate_for(name, config))
-    return out
+    return [candidate_for(name, config) for name in config.model.fit]
 
 
-def _candidate_for(name: str, config: Config) -> str:
+def candidate_for(name: str, config: Config) -> str:
+    """The candidate name for a model name of the config (boosted, forest, cox or a candidate)."""
     if name in CANDIDATE_ORDER:
         return name
     if name == "boosted":
@@ -90,7 +87,7 @@ def make_model(name: str, config: Config, seed: int, *, inner_folds: int | None 
         mode = "bagging" if name == "forest_bagging" else "random_forest"
         section = dataclasses.replace(config.model.forest, mode=mode)
         return SurvivalForest.from_config(section, seed)
-    return make_model(_candidate_for(name, config), config, seed, inner_folds=inner_folds)
+    return make_model(candidate_for(name, config), config, seed, inner_folds=inner_folds)
 
 
 @dataclass
@@ -115,7 +112,7 @@ def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | N
     rng = np.random.default_rng(seed)
     cv_seed, compare_seed, fit_seed = (int(s) for s in rng.integers(0, 2**31 - 1, size=3))
 
-    pin = None if config.model.choose == "auto" else _candidate_for(config.model.choose, config)
+    pin = None if config.model.choose == "auto" else candidate_for(config.model.choose, config)
     if pin is None:
         names, note = candidate_names(table.n_failures, len(table.covariates))
         names = list(names)
@@ -143,21 +140,16 @@ def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | N
     resampled = None if config.validation.bootstrap_metrics == "all" else ("c_harrell", "c_truncation")
     comparison = compare_models(cv, bootstrap=config.validation.bootstrap, seed=compare_seed,
                                 resampled_columns=resampled, jobs=config.validation.jobs)
-    files: dict[str, str] = {}
-    for path in write_comparison(cv, out_dir, comparison):
-        files[path.stem] = str(path)
-    metrics = json.loads(Path(files["metrics"]).read_text(encoding="utf-8"))
-    metrics["choice"] = as_dict(choice)
-    metrics["calibration"] = _calibration(cv, [choice.name, "cox"], main_h).to_dict(orient="records")
-    _atomic.write_json(files["metrics"], metrics)
+    calibration = _calibration(cv, [choice.name, "cox"], main_h)
+    extra = {"choice": as_dict(choice), "calibration": calibration.to_dict(orient="records")}
+    files: dict[str, str] = {path.stem: str(path) for path in write_comparison(cv, out_dir, comparison, extra)}
     files["candidates"] = str(_atomic.write_csv(out_dir / "candidates.csv",
                                                 choice.candidates.reset_index(names="candidate")))
-    files["calibration"] = str(_atomic.write_csv(out_dir / "calibration.csv",
-                                                 pd.DataFrame(metrics["calibration"])))
+    files["calibration"] = str(_atomic.write_csv(out_dir / "calibration.csv", calibration))
 
     to_fit = list(dict.fromkeys([choice.name, *config_model_names(config)]))
     fit_seeds = np.random.default_rng(fit_seed).integers(0, 2**31 - 1, size=len(to_fit))
-    golden = table.in_service() if table.in_service().n_rows else table
+    golden = golden_rows(table)
     n_jobs = -1 if config.validation.jobs == 0 else max(1, config.validation.jobs)
     models = [make_model(name, config, int(s)) for name, s in zip(to_fit, fit_seeds)]
     if n_jobs == 1 or len(models) == 1:
@@ -184,6 +176,13 @@ def _readable_summary(model, fleet: LifeTable, out_dir: Path) -> dict[str, str]:
     except ModelError:
         return {}
     return {"readable_rules": str(_atomic.write_text(out_dir / "readable_rules.txt", summary.text() + "\n"))}
+
+
+def golden_rows(table: LifeTable) -> LifeTable:
+    """Rows whose predictions a bundle stores to check itself: the units in service
+    (every row when none is)."""
+    in_service = table.in_service()
+    return in_service if in_service.n_rows else table
 
 
 def _fit(model: SurvivalModel, table: LifeTable) -> SurvivalModel:

@@ -41,11 +41,13 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from wearcast import _atomic, __version__
+from wearcast import _atomic
 from wearcast._lock import RunLock
 from wearcast.config import Config
 from wearcast.drift import drift_table
+from wearcast.fitting import MODELS_DIR
 from wearcast.pipeline import JobState, check_stage, fit_stage, rank_stage, report_stage
+from wearcast.models.bundle import package_versions
 from wearcast.registry import ModelRegistry
 
 EXIT_DONE = 0
@@ -114,8 +116,7 @@ def _run_into(config: Config, registry: ModelRegistry, out: Path, run_id: str, i
         timings[name] = time.perf_counter() - start
     table = state.export.table
     challenger = state.fit.main_model
-    golden = table.in_service() if table.in_service().n_rows else table
-    challenger_id = registry.add(challenger, golden.X, golden.exit)
+    challenger_id = registry.add(out / MODELS_DIR / state.fit.chosen, challenger.name)
     champion_id = registry.current_id()
 
     start = time.perf_counter()
@@ -164,7 +165,7 @@ def _run_into(config: Config, registry: ModelRegistry, out: Path, run_id: str, i
         "as_of": as_of,
         "inputs": inputs,
         "config": _plain(dataclasses.asdict(config)),
-        "versions": _versions(),
+        "versions": package_versions(),
         "seeds": {"model": config.model.seed},
         "chosen_model": state.fit.chosen,
         "choice_reason": state.fit.choice.reason,
@@ -332,13 +333,3 @@ def _plain(obj):
     if isinstance(obj, (np.floating, np.integer)):
         return obj.item()
     return obj
-
-
-def _versions() -> dict:
-    import lifelines
-    import lightgbm
-    import sklearn
-
-    return {"wearcast": __version__, "numpy": np.__version__, "pandas": pd.__version__,
-            "scikit-learn": sklearn.__version__, "lightgbm": lightgbm.__version__,
-            "lifelines": lifelines.__version__}

@@ -97,13 +97,13 @@ def rank_stage(config: Config, out_dir: Path, state: JobState) -> dict:
 def _ranking_model(config: Config, state: JobState):
     """(name, fitted model) the list is ranked with."""
     from wearcast.exceptions import ConfigError
-    from wearcast.fitting import _candidate_for
+    from wearcast.fitting import candidate_for
 
     if state.rank_model is not None:
         return getattr(state.rank_model, "name", "model"), state.rank_model
     if state.rank_with is None:
         return state.fit.chosen, state.fit.main_model
-    wanted = _candidate_for(state.rank_with, config)
+    wanted = candidate_for(state.rank_with, config)
     if wanted not in state.fit.models:
         raise ConfigError(
             f"model {state.rank_with!r} was not fitted in this run (fitted: {', '.join(sorted(state.fit.models))}); "

@@ -43,26 +43,25 @@ class ModelRegistry:
         return removed
 
     # -- models --------------------------------------------------------------
-    def add(self, model, golden_X, golden_ages) -> str:
-        """Save ``model`` as a bundle; return its id (``<name>-<sha12>``).
+    def add(self, bundle: Path, name: str) -> str:
+        """Store a copy of a written bundle folder; return its id (``<name>-<sha12>``).
 
-        The id is the SHA-256 of the bundle's manifest, so the same fitted model
-        saved twice gets the same id and is stored once.
+        The fit stage has already written and checked the bundle, so it is copied,
+        not saved again. The id is the SHA-256 of the bundle's manifest, so the
+        same fitted model added twice gets the same id and is stored once.
         """
-        from wearcast.models.bundle import write_bundle
-
+        bundle = Path(bundle)
+        digest = hashlib.sha256((bundle / "manifest.json").read_bytes()).hexdigest()[:12]
+        model_id = f"{name}-{digest}"
+        final = self.models / model_id
+        if final.exists():
+            return model_id
         self.models.mkdir(parents=True, exist_ok=True)
         staging = self.models / f"{_TMP_PREFIX}{os.getpid()}"
         shutil.rmtree(staging, ignore_errors=True)
-        write_bundle(model, staging, golden_X, golden_ages)
-        digest = hashlib.sha256((staging / "manifest.json").read_bytes()).hexdigest()[:12]
-        model_id = f"{model.name}-{digest}"
-        final = self.models / model_id
-        if final.exists():
-            shutil.rmtree(staging, ignore_errors=True)
-        else:
-            os.replace(staging, final)
-            _atomic._fsync_dir(self.models)
+        shutil.copytree(bundle, staging)
+        os.replace(staging, final)
+        _atomic._fsync_dir(self.models)
         return model_id
 
     def load(self, model_id: str):

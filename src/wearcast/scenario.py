@@ -31,7 +31,6 @@ from __future__ import annotations
 
 import datetime as dt
 import io
-import json
 from dataclasses import dataclass
 from pathlib import Path
 

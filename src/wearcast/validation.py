@@ -185,12 +185,7 @@ _SUMMED = ("expected_failures_", "observed_failures_")
 
 def fold_metrics(s: FoldScores, horizons_days, tau_days: float, brier_times: np.ndarray) -> dict[str, float]:
     """All metric columns for one fold's held-out scores."""
-    out: dict[str, float] = {}
-    # Harrell's C through the counting kernel with everyone entered before the first
-    # exit: the same pairs as scikit-survival's (tests check the equality), much faster.
-    before = np.full(len(s.exit), min(0.0, float(s.exit.min(initial=0.0))) - 1.0)
-    out["c_harrell"] = truncated_concordance_counts(before, s.exit, s.event, s.risk)["c"]
-    out["c_truncation"] = truncated_concordance_counts(s.entry, s.exit, s.event, s.risk)["c"]
+    out = _concordance_only(s, horizons_days, tau_days, brier_times)
     out[_uno_column(tau_days)] = uno_c(s.train_exit, s.train_event, s.exit, s.event, s.risk, tau=tau_days).c
     window = s.exit - s.entry
     aucs = time_dependent_auc(s.train_window, s.train_event, window, s.event, s.risk, horizons_days)
@@ -315,7 +310,11 @@ _CONCORDANCE = ("c_harrell", "c_truncation")
 
 
 def _concordance_only(s: FoldScores, horizons_days, tau_days: float, brier_times) -> dict[str, float]:
-    """The two concordance indices of :func:`fold_metrics`, without the IPCW metrics."""
+    """Harrell's and the truncation-aware C of one fold's held-out scores.
+
+    Harrell's C goes through the counting kernel with everyone entered before the
+    first exit: the same pairs as scikit-survival's (tests check the equality), much faster.
+    """
     before = np.full(len(s.exit), min(0.0, float(s.exit.min(initial=0.0))) - 1.0)
     return {"c_harrell": truncated_concordance_counts(before, s.exit, s.event, s.risk)["c"],
             "c_truncation": truncated_concordance_counts(s.entry, s.exit, s.event, s.risk)["c"]}
@@ -465,9 +464,11 @@ def compare_models(
 
 
 # -- output ------------------------------------------------------------------------------
-def write_comparison(result: CVResult, out_dir, comparison: pd.DataFrame | None = None) -> list[Path]:
-    """Write ``metrics.json`` (per fold, summary, τ, notes) and ``comparison.csv``
-    atomically into ``out_dir``; ``comparison`` defaults to the summary."""
+def write_comparison(result: CVResult, out_dir, comparison: pd.DataFrame | None = None,
+                     extra: dict | None = None) -> list[Path]:
+    """Write ``metrics.json`` (per fold, summary, τ, notes, and any ``extra`` keys)
+    and ``comparison.csv`` atomically into ``out_dir``; ``comparison`` defaults to
+    the summary."""
     out_dir = Path(out_dir)
     table = comparison if comparison is not None else result.summary
     payload = {
@@ -482,6 +483,7 @@ def write_comparison(result: CVResult, out_dir, comparison: pd.DataFrame | None 
         "summary": json.loads(result.summary.to_json(orient="records")),
         "comparison": json.loads(table.to_json(orient="records")),
         "bootstrap": dict(table.attrs) if comparison is not None else None,
+        **(extra or {}),
     }
     return [_atomic.write_json(out_dir / "metrics.json", payload),
             _atomic.write_csv(out_dir / "comparison.csv", table)]

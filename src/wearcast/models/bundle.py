@@ -21,6 +21,7 @@ manifest bytes.
 from __future__ import annotations
 
 import hashlib
+import importlib
 import io
 import json
 from pathlib import Path
@@ -78,7 +79,7 @@ def write_bundle(model, folder, golden_X: pd.DataFrame, golden_ages) -> Path:
     predictions = _golden_predictions(model, reread)
     written.append(_atomic.write_text(folder / GOLDEN_PREDICTIONS, _to_csv(predictions)))
 
-    versions = _versions()
+    versions = package_versions()
     files = []
     for path in sorted(set(written), key=lambda p: p.name):
         rel = path.resolve().relative_to(folder.resolve()).as_posix()
@@ -224,14 +225,14 @@ def _starts_like_pickle(path: Path) -> bool:
     return len(head) == 2 and head[0] == 0x80 and 1 <= head[1] <= 5
 
 
-def _versions() -> dict[str, str]:
+def package_versions() -> dict[str, str]:
+    """Versions of wearcast and the packages its results depend on."""
     import wearcast
 
     versions = {"wearcast": wearcast.__version__, "numpy": np.__version__, "pandas": pd.__version__}
-    try:
-        import lightgbm
-
-        versions["lightgbm"] = lightgbm.__version__
-    except ImportError:  # pragma: no cover - lightgbm is a dependency
-        pass
+    for name, module in (("lightgbm", "lightgbm"), ("scikit-learn", "sklearn"), ("lifelines", "lifelines")):
+        try:
+            versions[name] = importlib.import_module(module).__version__
+        except ImportError:  # pragma: no cover - all are dependencies
+            pass
     return versions
