@@ -46,8 +46,9 @@ from wearcast._lock import RunLock
 from wearcast.config import Config
 from wearcast.drift import drift_table
 from wearcast.fitting import MODELS_DIR
-from wearcast.pipeline import JobState, check_stage, fit_stage, rank_stage, report_stage
+from wearcast.pipeline import JobState, check_stage, fit_stage, rank_stage, report_stage, run_stage
 from wearcast.models.bundle import package_versions
+from wearcast.ranking import main_probability_column
 from wearcast.registry import ModelRegistry
 
 EXIT_DONE = 0
@@ -108,12 +109,9 @@ def run_monthly(config: Config, *, as_of: dt.date | None = None, jobs: int | Non
 
 def _run_into(config: Config, registry: ModelRegistry, out: Path, run_id: str, inputs: dict,
               jobs: int | None, scheduler: str | None) -> dict:
-    timings = {}
     state = JobState(jobs=jobs, scheduler=scheduler)
-    for name, stage in (("check", check_stage), ("fit", fit_stage)):
-        start = time.perf_counter()
-        state.summaries[name] = stage(config, out, state)
-        timings[name] = time.perf_counter() - start
+    run_stage("check", check_stage, config, out, state)
+    run_stage("fit", fit_stage, config, out, state)
     table = state.export.table
     challenger = state.fit.main_model
     challenger_id = registry.add(out / MODELS_DIR / state.fit.chosen, challenger.name)
@@ -131,7 +129,7 @@ def _run_into(config: Config, registry: ModelRegistry, out: Path, run_id: str, i
         gate = promotion_gate(config, champion, challenger)
         promote, reasons = gate["promote"], gate["reasons"]
         decision = "promoted" if promote else "kept champion"
-    timings["gate"] = time.perf_counter() - start
+    state.timings["gate"] = time.perf_counter() - start
 
     used = challenger if promote else champion
     state.rank_model = used
@@ -141,10 +139,7 @@ def _run_into(config: Config, registry: ModelRegistry, out: Path, run_id: str, i
 
         state.export = load_export(config_for_model(config, champion))
         table = state.export.table
-    for name, stage in (("rank", rank_stage),):
-        start = time.perf_counter()
-        state.summaries[name] = stage(config, out, state)
-        timings[name] = time.perf_counter() - start
+    run_stage("rank", rank_stage, config, out, state)
     previous = _previous_run(registry, str(table.as_of.date()) if table.as_of is not None else "", run_id)
     changes = month_changes(previous, state.ranked.ranked_units, config.ranking.top_k) if previous else None
     if changes is not None:
@@ -155,9 +150,7 @@ def _run_into(config: Config, registry: ModelRegistry, out: Path, run_id: str, i
     _atomic.write_json(out / "gate.json", {"decision": decision, "reasons": reasons, **_plain(gate)})
     # Refit checkpoints serve a killed run's resume; a finished month does not keep them.
     shutil.rmtree(out / "refits", ignore_errors=True)
-    start = time.perf_counter()
-    state.summaries["report"] = report_stage(config, out, state)
-    timings["report"] = time.perf_counter() - start
+    run_stage("report", report_stage, config, out, state)
 
     as_of = table.as_of.date().isoformat() if table.as_of is not None else None
     manifest = {
@@ -181,7 +174,7 @@ def _run_into(config: Config, registry: ModelRegistry, out: Path, run_id: str, i
     }
     _atomic.write_json(out / "manifest.json", manifest)
     # Wall-clock times differ between reruns, so they live apart from the manifest.
-    _atomic.write_json(out / "timings.json", {k: round(v, 3) for k, v in timings.items()})
+    _atomic.write_json(out / "timings.json", {k: round(v, 3) for k, v in state.timings.items()})
     return {"promote": promote, "decision": decision, "reasons": reasons, "challenger_id": challenger_id,
             "champion_id": champion_id, "model_used": manifest["model_used"], "as_of": as_of}
 
@@ -259,7 +252,7 @@ def month_changes(previous_dir: Path, ranked: pd.DataFrame, top_k: int) -> dict 
     if not path.exists():
         return None
     before = pd.read_csv(path, dtype={"unit_id": str})
-    main = _main_probability_column(ranked)
+    main = main_probability_column(ranked)
     if main is None or main not in before.columns:
         return None
     top_now = set(ranked.loc[ranked["rank"] <= top_k, "unit_id"])
@@ -283,11 +276,6 @@ def month_changes(previous_dir: Path, ranked: pd.DataFrame, top_k: int) -> dict 
             for _, r in movers.iterrows()
         ],
     }
-
-
-def _main_probability_column(ranked: pd.DataFrame) -> str | None:
-    cols = [c for c in ranked.columns if c.startswith("p_fail_") and c.endswith("d")]
-    return max(cols, key=lambda c: float(c[len("p_fail_"):-1])) if cols else None
 
 
 def _previous_run(registry: ModelRegistry, as_of: str, run_id: str) -> Path | None:

@@ -15,6 +15,7 @@ bundles), ``rank`` (bootstrap refits, ranked units, fleet forecast) and
 from __future__ import annotations
 
 import json
+import time
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Callable
@@ -31,6 +32,7 @@ class JobState:
     fit: object | None = None  # wearcast.fitting.FitOutcome
     ranked: object | None = None  # wearcast.ranking.RankedList
     summaries: dict[str, dict] = field(default_factory=dict)
+    timings: dict[str, float] = field(default_factory=dict)  # wall seconds per stage
     jobs: int | None = None  # overrides [ranking] jobs when set
     scheduler: str | None = None  # Dask scheduler address for refits
     rank_with: str | None = None  # rank with this fitted model (name) instead of the chosen one
@@ -151,10 +153,18 @@ def run_job(config: Config, out_dir: str | Path, stages: tuple[tuple[str, Stage]
     out_dir = Path(out_dir)
     state = state or JobState()
     for name, stage in stages:
-        state.summaries[name] = stage(config, out_dir, state)
+        run_stage(name, stage, config, out_dir, state)
     _atomic.write_text(out_dir / "run_summary.json",
                        json.dumps(state.summaries, indent=2, sort_keys=True, default=str) + "\n")
     return state.summaries
+
+
+def run_stage(name: str, stage: Stage, config: Config, out_dir: Path, state: JobState) -> dict:
+    """Run one stage; keep its summary and wall time in ``state``; return the summary."""
+    start = time.perf_counter()
+    state.summaries[name] = stage(config, Path(out_dir), state)
+    state.timings[name] = time.perf_counter() - start
+    return state.summaries[name]
 
 
 def stages_named(names) -> tuple[tuple[str, Stage], ...]:

@@ -40,6 +40,12 @@ class RankedList:
     summary: dict
 
 
+def main_probability_column(ranked: pd.DataFrame) -> str | None:
+    """The ``p_fail_<h>d`` column of the longest horizon in a ranked list (None if none)."""
+    cols = [c for c in ranked.columns if c.startswith("p_fail_") and c.endswith("d") and c.count("_") == 2]
+    return max(cols, key=lambda c: float(c[len("p_fail_"):-1])) if cols else None
+
+
 def _horizon_label(h) -> str:
     return f"{h:g}d"
 

@@ -85,3 +85,13 @@ def load(config_path: Path):
 
     config = load_config(config_path)
     return config, config.path(config.output.folder)
+
+
+def forecast_lines(forecast, heading: str = "expected failures in the fleet:") -> list[str]:
+    """The fleet-wide rows of a fleet forecast (ranking.fleet_forecast), one line per horizon."""
+    fleet = forecast[forecast["group"].astype(str) == "all"] if "group" in forecast.columns else forecast
+    lines = [heading]
+    for _, row in fleet.iterrows():
+        lines.append(f"  within {int(row['horizon_days'])} days: {float(row['expected_failures']):.1f} "
+                     f"(90 % interval {float(row['failures_low']):.0f}-{float(row['failures_high']):.0f})")
+    return lines

@@ -6,7 +6,7 @@ from pathlib import Path
 
 import click
 
-from wearcast.cli._common import EPILOG_CAUTION, command_help, library_call
+from wearcast.cli._common import EPILOG_CAUTION, command_help, forecast_lines, library_call
 
 
 def describe(result: dict) -> list[str]:
@@ -38,19 +38,13 @@ def describe(result: dict) -> list[str]:
 
 
 def _forecast_lines(rank: dict) -> list[str]:
-    """The fleet forecast in one line per horizon, read back from the file the run wrote."""
+    """The fleet forecast, read back from the file the run wrote."""
     path = rank.get("fleet_forecast_path")
     if not path:
         return []
     import pandas as pd
 
-    forecast = pd.read_csv(path, keep_default_na=False)
-    fleet = forecast[forecast["group"] == "all"]
-    lines = ["expected failures in the invented fleet:"]
-    for _, row in fleet.iterrows():
-        lines.append(f"  within {int(row['horizon_days'])} days: {float(row['expected_failures']):.1f} "
-                     f"(90 % interval {row['failures_low']}-{row['failures_high']})")
-    return lines
+    return forecast_lines(pd.read_csv(path, keep_default_na=False), "expected failures in the invented fleet:")
 
 
 @click.command(

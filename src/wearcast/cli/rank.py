@@ -6,27 +6,22 @@ from pathlib import Path
 
 import click
 
-from wearcast.cli._common import (EPILOG_CAUTION, command_help, config_argument, library_call, load, out_option,
-                                  workers_options)
+from wearcast.cli._common import (EPILOG_CAUTION, command_help, config_argument, forecast_lines, library_call, load,
+                                  out_option, workers_options)
 
 
 def describe_ranking(ranked, top: int = 10) -> list[str]:
     """The first units of the list and the fleet forecast, as terminal lines."""
     from wearcast.validation import format_table
 
+    from wearcast.ranking import main_probability_column
+
     units = ranked.ranked_units
-    p_cols = [c for c in units.columns if c.startswith("p_fail_") and c.count("_") == 2]
-    main = max(p_cols, key=lambda c: float(c[7:-1]))
+    main = main_probability_column(units)
     cols = [c for c in ["rank", "unit_id", "age_years", main, f"{main}_low", f"{main}_high", "rank_low",
                         "rank_high", "driver_1"] if c in units.columns]
     lines = [f"highest risk units (of {len(units)} in service):", format_table(units.head(top)[cols]).rstrip()]
-    fleet = ranked.fleet_forecast
-    fleet = fleet[fleet["group"] == "all"] if "group" in fleet.columns else fleet
-    lines.append("expected failures in the fleet:")
-    for _, row in fleet.iterrows():
-        lines.append(f"  within {int(row['horizon_days'])} days: {row['expected_failures']:.1f} "
-                     f"(90 % interval {row['failures_low']:.0f}-{row['failures_high']:.0f})")
-    return lines
+    return lines + forecast_lines(ranked.fleet_forecast)
 
 
 @click.command(
