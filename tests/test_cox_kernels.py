@@ -73,10 +73,10 @@ def test_gradient_and_hessian_match_finite_differences(ties, seed):
     rng = np.random.default_rng(seed)
     entry, exit, event, strata, weights, eta = random_data(rng, n=30)
     rs = prepare_risk_sets(entry, exit, event, strata=strata, weights=weights, ties=ties)
-    loss, grad, hess = cox_loss_gradient_hessian(rs, eta)
-    g2, h2 = cox_gradient_hessian(rs, eta)
-    np.testing.assert_array_equal(grad, g2)
-    np.testing.assert_array_equal(hess, h2)
+    loss, grad, hess = cox_loss_gradient_hessian(rs, eta)  # the NumPy version
+    g2, h2 = cox_gradient_hessian(rs, eta)  # the compiled one when numba is installed
+    np.testing.assert_allclose(grad, g2, rtol=1e-12, atol=1e-14)
+    np.testing.assert_allclose(hess, h2, rtol=1e-12, atol=1e-14)
     assert loss == cox_loss(rs, eta)
     h = 1e-5
     fd_grad = np.empty(rs.n)
@@ -99,6 +99,27 @@ def test_gradient_and_hessian_match_finite_differences(ties, seed):
     # The gradient of a loss invariant to a shared shift sums to zero per stratum.
     for s in np.unique(strata):
         assert grad[strata == s].sum() == pytest.approx(0.0, abs=1e-10)
+
+
+@pytest.mark.parametrize("ties", ["breslow", "efron"])
+def test_compiled_kernel_equals_the_numpy_kernel(ties):
+    # Larger data than the finite-difference test: many ties, strata, weights,
+    # delayed entry and a large shift of eta (no overflow in either version).
+    from wearcast.models import _cox_fused
+    from wearcast.models._cox_kernels import _gradient_hessian, _pieces
+
+    if not _cox_fused.available():
+        pytest.skip("numba is not installed; the NumPy kernel is the only one")
+    rng = np.random.default_rng(9)
+    entry, exit, event, strata, weights, eta = random_data(rng, n=3000, n_strata=4)
+    rs = prepare_risk_sets(entry, exit, event, strata=strata, weights=weights, ties=ties)
+    for shift in (0.0, 600.0):
+        expected = _gradient_hessian(rs, _pieces(rs, eta + shift, derivatives=True)[1])
+        got = _cox_fused.gradient_hessian(rs, eta + shift)
+        np.testing.assert_allclose(got[0], expected[0], rtol=1e-11, atol=1e-12)
+        np.testing.assert_allclose(got[1], expected[1], rtol=1e-11, atol=1e-12)
+    with pytest.raises(ValueError, match="non-finite"):
+        cox_gradient_hessian(rs, np.full(rs.n, np.nan))
 
 
 def test_strata_loss_is_sum_of_per_stratum_losses():

@@ -153,3 +153,37 @@ def test_bootstrap_units_matches_a_plain_loop_over_draws():
         pieces.append(rows)
     expected = pd.concat(pieces, ignore_index=True)
     pd.testing.assert_frame_equal(got.reset_index(drop=True), expected)
+
+
+def test_bootstrap_weights_are_the_same_draw_as_copied_units():
+    # The weighted form keeps each drawn unit's rows once with weight = times drawn;
+    # checked against the copied form from the same seed, and on the Breslow partial
+    # likelihood (weights and copies give the same value by definition of case weights).
+    import numpy as np
+    import pandas as pd
+
+    from wearcast.lifetable import LifeTable
+    from wearcast.models._cox_kernels import cox_loss, prepare_risk_sets
+
+    rng = np.random.default_rng(5)
+    n_rows = rng.integers(1, 4, size=40)
+    ids = np.repeat([f"U{i:03d}" for i in range(40)], n_rows)
+    starts = np.concatenate([np.arange(k) * 10.0 + float(rng.integers(0, 5)) for k in n_rows])
+    frame = pd.DataFrame({"unit_id": ids, "entry_age": starts, "exit_age": starts + 10.0,
+                          "failed": rng.random(len(ids)) < 0.3, "x": rng.normal(size=len(ids))})
+    table = LifeTable.from_frame(frame, ["x"])
+    copied = table.bootstrap_units(np.random.default_rng(3)).frame
+    weighted, weights = table.bootstrap_weights(np.random.default_rng(3))
+
+    copies = pd.Series(copied["unit_id"].unique())
+    times_drawn = copies.str.split("#").str[0].value_counts()
+    expected = weighted.frame["unit_id"].map(times_drawn).to_numpy(float)
+    np.testing.assert_array_equal(weights, expected)
+    assert weights.sum() == len(copied)
+    assert set(weighted.frame["unit_id"]) == set(times_drawn.index)
+
+    eta_w = weighted.frame["x"].to_numpy()
+    eta_c = copied["x"].to_numpy()
+    rs_w = prepare_risk_sets(weighted.entry, weighted.exit, weighted.event, weights=weights, ties="breslow")
+    rs_c = prepare_risk_sets(copied["entry_age"], copied["exit_age"], copied["failed"], ties="breslow")
+    assert cox_loss(rs_w, eta_w) == pytest.approx(cox_loss(rs_c, eta_c), rel=1e-12)

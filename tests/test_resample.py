@@ -44,11 +44,11 @@ class CountingBoosted(BoostedSurvivalTrees):
     fits = 0
     fail_at: int | None = None
 
-    def fit(self, table):
+    def _fit(self, table, weights):  # both fit and fit_resampled come through here
         if CountingBoosted.fail_at is not None and CountingBoosted.fits >= CountingBoosted.fail_at:
             raise RuntimeError("injected stop")
         CountingBoosted.fits += 1
-        return super().fit(table)
+        return super()._fit(table, weights)
 
     def unfitted_copy(self, seed):
         base = super().unfitted_copy(seed)

@@ -27,6 +27,12 @@ from wearcast.exceptions import DataError
 CORE_COLUMNS = ("unit_id", "life", "entry_age", "exit_age", "failed", "mode", "in_service")
 
 
+def _draw_unit_counts(codes: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    """Times each unit code 0..max(codes) is drawn in n_units draws with replacement."""
+    n_units = int(codes.max()) + 1 if len(codes) else 0
+    return np.bincount(rng.integers(0, n_units, size=n_units), minlength=n_units)
+
+
 def check_life_table(
     frame: pd.DataFrame,
     covariates: Sequence[str] = (),
@@ -243,6 +249,16 @@ class LifeTable:
         keep = self.frame["unit_id"].isin(set(map(str, unit_ids))).to_numpy()
         return self.take_rows(np.flatnonzero(keep))
 
+    def bootstrap_counts(self, rng: np.random.Generator) -> np.ndarray:
+        """How many times each unit is drawn in one bootstrap of whole units.
+
+        Draws ``n_units`` unit codes (:meth:`unit_codes`) with replacement from
+        ``rng``; returns the counts, shape (n_units,) int64, summing to n_units.
+        :meth:`bootstrap_units` and :meth:`bootstrap_weights` both start from
+        this draw, so one seed gives the same resample either way.
+        """
+        return _draw_unit_counts(self.unit_codes(), rng)
+
     def bootstrap_units(self, rng: np.random.Generator) -> "LifeTable":
         """Resample whole unit histories with replacement.
 
@@ -250,8 +266,9 @@ class LifeTable:
         stay distinct units (risk sets and folds treat them separately).
         """
         codes = self.unit_codes()
-        n_units = codes.max() + 1 if len(codes) else 0
-        draws = np.sort(rng.integers(0, n_units, size=n_units))
+        counts = _draw_unit_counts(codes, rng)
+        draws = np.repeat(np.arange(counts.size), counts)  # sorted unit codes, one per draw
+        n_units = counts.size
         order = np.argsort(codes, kind="stable")
         starts = np.searchsorted(codes[order], np.arange(n_units + 1))
         lengths = starts[draws + 1] - starts[draws]
@@ -266,6 +283,20 @@ class LifeTable:
         frame = self.frame.iloc[rows].reset_index(drop=True)
         frame["unit_id"] = np.repeat(labels, lengths)
         return LifeTable(frame, self.covariates, self.categorical, self.as_of, dict(self.meta))
+
+    def bootstrap_weights(self, rng: np.random.Generator) -> tuple["LifeTable", np.ndarray]:
+        """The same resample as :meth:`bootstrap_units`, as case weights.
+
+        Returns the rows of the units drawn at least once (in table order) and
+        each row's weight, shape (rows,) float: the number of times its unit
+        was drawn. Weighted risk sets give the same Breslow partial likelihood
+        as the duplicated table with about 63 % of its rows.
+        """
+        codes = self.unit_codes()
+        counts = _draw_unit_counts(codes, rng)
+        row_counts = counts[codes] if len(codes) else np.zeros(0, np.int64)
+        rows = np.flatnonzero(row_counts > 0)
+        return self.take_rows(rows), row_counts[rows].astype(float)
 
     def in_service(self) -> "LifeTable":
         """The open interval of every unit still running at the export date."""

@@ -150,7 +150,7 @@ def rank_units(
     if refits is not None:
         _check_refits(refits, ids, horizons, rank_h, group_keys)
     X = rows.loc[:, list(table.covariates)]
-    p = np.column_stack([model.fail_probability(X, ages, h) for h in horizons])
+    p = np.asarray(model.fail_probabilities(X, ages, horizons), float)
     rank_col = horizons.index(rank_h)
     ranks = risk_ranks(p[:, rank_col])
 

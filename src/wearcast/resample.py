@@ -1,7 +1,8 @@
 """Bootstrap refits: how much the ranked list moves when the data are resampled.
 
 Each refit draws whole unit histories with replacement
-(:meth:`LifeTable.bootstrap_units`), fits a fresh copy of the chosen model
+(:meth:`SurvivalModel.fit_resampled`: copied units, or the same draw as case
+weights for the boosted model), fits a fresh copy of the chosen model
 (tuned choices fixed, see :meth:`SurvivalModel.unfitted_copy`) and predicts,
 for every unit in service in the *original* table at its current age, the
 probability of failing within each horizon. The spread across refits gives
@@ -53,7 +54,7 @@ INTERVAL = (0.05, 0.95)
 CHUNK_BYTES = 64 * 2**20
 #: Label of the whole-fleet group.
 FLEET = ("fleet", "all")
-_FORMAT_VERSION = 1
+_FORMAT_VERSION = 2  # 2: boosted refits fit the unit draw as case weights
 
 
 @dataclass(frozen=True)
@@ -202,12 +203,31 @@ def refit_fingerprint(table, model, seed: int, n_refits: int, horizons_days, ran
 
 
 # -- one refit -------------------------------------------------------------------------
+class _RefitInputs:
+    """What every refit reads, prepared once: the table cut to its core and
+    covariate columns (cheaper to resample), and the in-service units'
+    covariates and current ages (the same for every refit)."""
+
+    def __init__(self, table):
+        from wearcast.lifetable import CORE_COLUMNS, LifeTable
+
+        rows, _, ages = current_units(table)
+        columns = list(dict.fromkeys([*CORE_COLUMNS, *table.covariates]))
+        self.table = LifeTable(table.frame.loc[:, columns], table.covariates, table.categorical,
+                               table.as_of, dict(table.meta))
+        self.X = rows.loc[:, list(table.covariates)].reset_index(drop=True)
+        self.ages = ages
+
+    def get(self) -> "_RefitInputs":
+        return self
+
+
 class _SharedTable:
     """A life table handed to local worker processes through one parquet file.
 
     Pickling a large table for every refit costs more than reading it once per
     worker: the handle pickles as the file's path, and each worker keeps the
-    table it read last.
+    inputs (:class:`_RefitInputs`) of the table it read last.
     """
 
     _cache: dict = {}
@@ -217,33 +237,33 @@ class _SharedTable:
         self.key = key
         self.parts = (table.covariates, table.categorical, table.as_of)
         table.frame.to_parquet(self.path, index=False)
-        self._table = table
+        self._inputs = None
 
     def __getstate__(self):
-        return {"path": self.path, "key": self.key, "parts": self.parts, "_table": None}
+        return {"path": self.path, "key": self.key, "parts": self.parts, "_inputs": None}
 
-    def get(self):
-        if self._table is None:
+    def get(self) -> _RefitInputs:
+        if self._inputs is None:
             if self.key not in _SharedTable._cache:
                 from wearcast.lifetable import LifeTable
 
                 _SharedTable._cache.clear()
-                _SharedTable._cache[self.key] = LifeTable(pd.read_parquet(self.path), *self.parts)
-            self._table = _SharedTable._cache[self.key]
-        return self._table
+                table = LifeTable(pd.read_parquet(self.path), *self.parts)
+                _SharedTable._cache[self.key] = _RefitInputs(table)
+            self._inputs = _SharedTable._cache[self.key]
+        return self._inputs
 
 
-def _refit_task(table, fresh_model, index: int, draw_seed: int, horizons, rank_column: int):
-    """Fit one bootstrap refit; returns (index, p (n, H) float32, ranks (n,), log risk (n,))."""
-    if isinstance(table, _SharedTable):
-        table = table.get()
-    sample = table.bootstrap_units(np.random.default_rng(draw_seed))
-    fresh_model.fit(sample)
-    rows, _, ages = current_units(table)
-    X = rows.loc[:, list(table.covariates)]
-    p = np.column_stack([fresh_model.fail_probability(X, ages, float(h)) for h in horizons])
+def _refit_task(inputs, fresh_model, index: int, draw_seed: int, horizons, rank_column: int):
+    """Fit one bootstrap refit; returns (index, p (n, H) float32, ranks (n,), log risk (n,)).
+
+    ``inputs``: a :class:`_RefitInputs` or a :class:`_SharedTable` handle to one.
+    """
+    inputs = inputs.get()
+    fresh_model.fit_resampled(inputs.table, np.random.default_rng(draw_seed))
+    p = np.asarray(fresh_model.fail_probabilities(inputs.X, inputs.ages, horizons), float)
     ranks = risk_ranks(p[:, rank_column])
-    return index, p.astype(np.float32), ranks, log_risk(fresh_model, X).astype(np.float32)
+    return index, p.astype(np.float32), ranks, log_risk(fresh_model, inputs.X).astype(np.float32)
 
 
 def _refit_path(folder: Path, index: int) -> Path:
@@ -307,8 +327,9 @@ class _Progress:
 # -- running the refits -----------------------------------------------------------------------
 def _run_joblib(table, copies, draws, todo, horizons, rank_column, jobs, on_result) -> None:
     if jobs == 1 or len(todo) <= 1:
+        inputs = _RefitInputs(table)
         for i in todo:
-            on_result(_refit_task(table, copies[i], i, draws[i], horizons, rank_column))
+            on_result(_refit_task(inputs, copies[i], i, draws[i], horizons, rank_column))
         return
     from joblib import Parallel, delayed
 
@@ -338,7 +359,7 @@ def _run_dask(scheduler, table, copies, draws, todo, horizons, rank_column, on_r
             "(for example tls://host:8786) and that the scheduler is running."
         ) from exc
     try:
-        shared = client.scatter(table, broadcast=True)
+        shared = client.scatter(_RefitInputs(table), broadcast=True)
         futures = [client.submit(_refit_task, shared, copies[i], i, draws[i], horizons, rank_column,
                                  pure=False) for i in todo]
         for _, result in as_completed(futures, with_results=True):

@@ -62,6 +62,24 @@ class SurvivalModel(ABC):
             self.cumulative_hazard_at(X, age), self.cumulative_hazard_at(X, age + float(horizon_days))
         )
 
+    def fail_probabilities(self, X: pd.DataFrame, age: np.ndarray, horizons_days) -> np.ndarray:
+        """:meth:`fail_probability` for several horizons at once, shape (n, H).
+
+        Models whose hazard is ``exp(eta(x)) H0(t)`` override it to score ``X``
+        once for all horizons.
+        """
+        return np.column_stack([self.fail_probability(X, age, float(h)) for h in horizons_days])
+
+    def fit_resampled(self, table, rng: np.random.Generator) -> "SurvivalModel":
+        """Fit on one bootstrap of whole units drawn from ``rng``; returns self.
+
+        The default fits the table of copied units
+        (:meth:`LifeTable.bootstrap_units`); a model that takes case weights
+        may fit the same draw as weights (:meth:`LifeTable.bootstrap_weights`)
+        instead, which is the same resample on fewer rows.
+        """
+        return self.fit(table.bootstrap_units(rng))
+
     def contributions(self, X: pd.DataFrame) -> pd.DataFrame:
         """Signed contribution of each covariate to the log-risk score, shape (n, p).
 

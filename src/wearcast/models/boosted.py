@@ -189,6 +189,22 @@ class BoostedSurvivalTrees(SurvivalModel):
     # -- fitting --------------------------------------------------------------
     def fit(self, table) -> "BoostedSurvivalTrees":
         """Fit on a :class:`wearcast.LifeTable`; returns self."""
+        return self._fit(table, None)
+
+    def fit_resampled(self, table, rng: np.random.Generator) -> "BoostedSurvivalTrees":
+        """Fit on one bootstrap of whole units, drawn units' rows once with case
+        weights = times drawn (:meth:`LifeTable.bootstrap_weights`).
+
+        The weights enter the partial likelihood, its derivatives and the
+        baseline hazard, so the loss is the copied table's (exactly under
+        Breslow ties; under Efron ties a unit's copies failing together are
+        not treated as tied with each other). Leaf sizes count distinct rows
+        (``min_data_in_leaf``) and weighted Hessian (``min_sum_hessian_in_leaf``).
+        """
+        sample, weights = table.bootstrap_weights(rng)
+        return self._fit(sample, weights)
+
+    def _fit(self, table, weights: np.ndarray | None) -> "BoostedSurvivalTrees":
         s = self.settings
         if table.n_failures == 0:
             raise ModelError("the life table holds no failure; boosted trees need at least one failure to fit.")
@@ -206,7 +222,7 @@ class BoostedSurvivalTrees(SurvivalModel):
 
         if s.n_trees is None:
             folds = grouped_folds(table.unit_codes(), s.folds, np.random.default_rng(fold_seed))
-            fold_curves = self._cv_curves(M, entry, exit_, event, folds, cat_idx, params)
+            fold_curves = self._cv_curves(M, entry, exit_, event, weights, folds, cat_idx, params)
             mean_curve = np.nanmean(fold_curves, axis=0)
             n_trees = int(np.nanargmin(mean_curve)) + 1
             self.cv_curve_, self.cv_fold_curves_ = mean_curve, fold_curves
@@ -214,7 +230,7 @@ class BoostedSurvivalTrees(SurvivalModel):
             n_trees = int(s.n_trees)
             self.cv_curve_ = self.cv_fold_curves_ = None
 
-        risk_sets = prepare_risk_sets(entry, exit_, event, ties=s.ties)
+        risk_sets = prepare_risk_sets(entry, exit_, event, weights=weights, ties=s.ties)
         booster = lgb.Booster(params, self._dataset(M, event, cat_idx, params))
         objective = cox_objective(risk_sets)
         for _ in range(n_trees):
@@ -224,10 +240,10 @@ class BoostedSurvivalTrees(SurvivalModel):
         self.covariates_ = covariates
         self.category_levels_ = levels
         eta = _training_scores(booster, len(M))
-        self.baseline_ = _fit_baseline(entry, exit_, event, eta, s.ties)
+        self.baseline_ = BaselineHazard.from_risk_sets(risk_sets, eta, interpolation="linear")
         return self
 
-    def _cv_curves(self, M, entry, exit_, event, folds, cat_idx, params) -> np.ndarray:
+    def _cv_curves(self, M, entry, exit_, event, weights, folds, cat_idx, params) -> np.ndarray:
         """Held-out loss per failure after each tree, shape (n_folds, trees run).
 
         The folds grow their boosters in step; boosting stops once the mean
@@ -239,8 +255,10 @@ class BoostedSurvivalTrees(SurvivalModel):
             train, held = folds != k, folds == k
             if not event[train].any():
                 continue
-            rs_train = prepare_risk_sets(entry[train], exit_[train], event[train], ties=s.ties)
-            rs_held = prepare_risk_sets(entry[held], exit_[held], event[held], ties=s.ties)
+            w_train = None if weights is None else weights[train]
+            w_held = None if weights is None else weights[held]
+            rs_train = prepare_risk_sets(entry[train], exit_[train], event[train], weights=w_train, ties=s.ties)
+            rs_held = prepare_risk_sets(entry[held], exit_[held], event[held], weights=w_held, ties=s.ties)
             ds_train = self._dataset(M[train], event[train], cat_idx, params)
             booster = lgb.Booster(params, ds_train)
             booster.add_valid(self._dataset(M[held], event[held], cat_idx, params, reference=ds_train), "held_out")
@@ -285,6 +303,12 @@ class BoostedSurvivalTrees(SurvivalModel):
     def risk_score(self, X: pd.DataFrame) -> np.ndarray:
         """Relative risk ``exp(eta(x))``, shape (n,); higher fails sooner."""
         return np.exp(self.log_risk(X))
+
+    def fail_probabilities(self, X: pd.DataFrame, age: np.ndarray, horizons_days) -> np.ndarray:
+        """P(fail within each horizon | working at ``age``), shape (n, H); ``X`` scored once."""
+        eta = self.log_risk(X)
+        age = np.asarray(age, float)
+        return np.column_stack([self.baseline_.fail_probability(eta, age, float(h)) for h in horizons_days])
 
     def cumulative_hazard_at(self, X: pd.DataFrame, ages: np.ndarray) -> np.ndarray:
         """``H(age_i | x_i) = exp(eta(x_i)) H0(age_i)``, shape (n,); ages in days."""
@@ -392,12 +416,6 @@ def _finite(value: float) -> float | None:
 
 
 # -- baseline hazard ------------------------------------------------------------
-def _fit_baseline(entry, exit_, event, eta, ties: str) -> BaselineHazard:
-    """Breslow baseline with delayed entry from the final scores (Efron-corrected
-    for tied failures when the model was fitted with Efron ties)."""
-    return BaselineHazard.estimate(entry, exit_, event, eta, ties=ties, interpolation="linear")
-
-
 def _load_baseline(data: dict, path: Path) -> BaselineHazard:
     try:
         return BaselineHazard.from_dict(data)
