@@ -64,6 +64,30 @@ def test_objective_returns_the_kernel_gradient_and_hessian(stanford):
     np.testing.assert_array_equal(hess, np.maximum(want_hess, HESSIAN_FLOOR))
 
 
+def test_subsampling_keeps_or_drops_whole_units(stanford):
+    # Stanford rows are start/stop pieces of a patient's history: a tree's
+    # subsample must keep or drop all of a patient's rows together.
+    rs = prepare_risk_sets(stanford.entry, stanford.exit, stanford.event)
+    codes = stanford.unit_codes()
+    eta = np.zeros(rs.n)
+    full_grad, full_hess = cox_objective(rs)(eta, None)
+    draws = []
+    objective = cox_objective(rs, subsample=0.5, unit_codes=codes, seed=3)
+    for _ in range(40):
+        grad, hess = objective(eta, None)
+        kept = hess > 0
+        np.testing.assert_array_equal(grad[kept], full_grad[kept])
+        np.testing.assert_array_equal(hess[kept], full_hess[kept])
+        assert (grad[~kept] == 0).all()
+        per_unit = pd.Series(kept).groupby(codes).agg(["min", "max"])
+        assert (per_unit["min"] == per_unit["max"]).all()
+        draws.append(per_unit["min"].to_numpy())
+    share = np.mean(draws)
+    assert 0.45 < share < 0.55  # 40 draws of 103 units at p = 0.5: sd about 0.008
+    again = cox_objective(rs, subsample=0.5, unit_codes=codes, seed=3)(eta, None)
+    np.testing.assert_array_equal(again[1] > 0, pd.Series(draws[0])[codes].to_numpy())
+
+
 def test_first_tree_leaves_are_newton_steps_on_the_kernel_values(rossi):
     # Wiring: with lambda_l2 = 0 and no bagging, LightGBM sets each leaf to
     # -lr * sum(grad) / sum(hess) over its rows (Newton step; LightGBM docs,
@@ -185,7 +209,9 @@ def test_from_config_maps_every_knob():
     model = BoostedSurvivalTrees.from_config(section, seed=9)
     params = model._lgb_params(1, ("age", "prio"), {})
     assert (params["learning_rate"], params["max_depth"], params["num_leaves"]) == (0.1, 2, 3)
-    assert (params["bagging_fraction"], params["bagging_freq"], params["feature_fraction_bynode"]) == (0.5, 1, 0.5)
+    assert params["feature_fraction_bynode"] == 0.5
+    # subsampling is by units inside the objective, never LightGBM's row bagging
+    assert model.settings.subsample == 0.5 and "bagging_fraction" not in params
     assert params["monotone_constraints"] == [0, 1]
     assert params["min_data_in_leaf"] == 4 and params["min_sum_hessian_in_leaf"] == pytest.approx(2.0)
     assert params["num_threads"] == 2 and model.settings.ties == "breslow" and model.seed == 9

@@ -78,7 +78,7 @@ class BoostedSection:
     max_trees: int = 1000  # upper bound on B; B itself is chosen by cross-validation
     tree_depth: int = 3  # d: depth of each tree
     max_leaves: int | None = None  # defaults to 2**tree_depth
-    subsample: float = 0.8  # share of rows per tree
+    subsample: float = 0.8  # share of units (whole histories) per tree
     predictors_per_split: float = 1.0  # share of predictors tried at each tree
     min_events_per_leaf: int = 10
     folds: int = 5

@@ -3,7 +3,8 @@
 Pure pieces, no model state:
 
 * :func:`cox_objective` wraps the kernel's gradient and diagonal Hessian as a
-  LightGBM custom objective (``fobj(raw_scores, dataset) -> (grad, hess)``);
+  LightGBM custom objective (``fobj(raw_scores, dataset) -> (grad, hess)``),
+  with per-tree subsampling of whole units;
 * :func:`heldout_loss_per_event` scores raw predictions on a held-out fold's
   own risk sets;
 * :func:`grouped_folds` assigns whole units to cross-validation folds;
@@ -29,18 +30,44 @@ from wearcast.models._cox_kernels import RiskSets, cox_gradient_hessian, cox_los
 HESSIAN_FLOOR = 1e-12
 
 
-def cox_objective(risk_sets: RiskSets) -> Callable[[np.ndarray, object], tuple[np.ndarray, np.ndarray]]:
+def cox_objective(
+    risk_sets: RiskSets,
+    *,
+    subsample: float = 1.0,
+    unit_codes: np.ndarray | None = None,
+    seed: int = 0,
+) -> Callable[[np.ndarray, object], tuple[np.ndarray, np.ndarray]]:
     """LightGBM custom objective for one training set.
 
     ``risk_sets`` comes from :func:`prepare_risk_sets` on that training set's
     rows, in the same order as the LightGBM ``Dataset``. The returned callable
     takes the current raw scores (log relative risk ``eta``, shape (n,)) and
     returns ``(grad, hess)``, both shape (n,), float64.
+
+    Stochastic boosting by units: with ``subsample < 1`` each call (one per
+    tree) keeps every unit (``unit_codes`` (n,), whole histories) with
+    probability ``subsample`` and sets the gradient and Hessian of the other
+    units' rows to zero, so they add nothing to the tree's split gains or leaf
+    values. The draws come from ``numpy.random.default_rng(seed)``, one per
+    call, so a fit is reproducible from its seed.
     """
+    if not 0 < subsample <= 1:
+        raise ValueError(f"subsample must be in (0, 1]; got {subsample}")
+    if subsample < 1:
+        if unit_codes is None or np.shape(unit_codes) != (risk_sets.n,):
+            raise ValueError(f"subsample < 1 needs unit_codes of shape ({risk_sets.n},)")
+        codes = np.asarray(unit_codes)
+        n_units = int(codes.max()) + 1 if codes.size else 0
+        rng = np.random.default_rng(seed)
 
     def objective(raw_scores: np.ndarray, _dataset: object) -> tuple[np.ndarray, np.ndarray]:
         grad, hess = cox_gradient_hessian(risk_sets, np.asarray(raw_scores, dtype=float))
-        return grad, np.maximum(hess, HESSIAN_FLOOR)
+        hess = np.maximum(hess, HESSIAN_FLOOR, out=hess)
+        if subsample < 1:
+            left_out = (rng.random(n_units) >= subsample)[codes]
+            grad[left_out] = 0.0
+            hess[left_out] = 0.0
+        return grad, hess
 
     return objective
 

@@ -17,9 +17,17 @@ each row's compensator ``exp(eta) * (H0(exit) - H0(entry))`` minus a small
 ``p**2`` term, and those compensators add up to the observed failures). So
 ``min_events_per_leaf`` is enforced approximately, as
 ``min_sum_hessian_in_leaf = min_events_per_leaf * subsample`` (the Hessian of
-the rows in the bag) together with ``min_data_in_leaf = min_events_per_leaf``
-rows. A leaf can therefore hold fewer observed failures than asked for when
-its failures are fewer than expected; it never holds fewer rows.
+the units in the tree's subsample) together with ``min_data_in_leaf =
+min_events_per_leaf`` rows. A leaf can therefore hold fewer observed failures
+than asked for when its failures are fewer than expected; it never holds fewer
+rows.
+
+Subsampling (stochastic boosting) is by whole units: each tree sees the
+gradient and Hessian of a random ``subsample`` share of the units (each unit
+kept with that probability, drawn from the model's seed) and zeros for the
+rest, so a unit's history is never split between in and out of a tree's sample.
+LightGBM's own row bagging is not used: it would split units, and zero
+gradients keep its histograms on contiguous rows, which is faster.
 """
 
 from __future__ import annotations
@@ -174,8 +182,6 @@ class BoostedSurvivalTrees(SurvivalModel):
             "verbosity": -1,
             "feature_pre_filter": False,
         }
-        if s.subsample < 1:
-            params.update(bagging_fraction=s.subsample, bagging_freq=1)
         if s.monotone:
             params["monotone_constraints"] = [int(s.monotone.get(c, 0)) for c in covariates]
         return params
@@ -217,12 +223,13 @@ class BoostedSurvivalTrees(SurvivalModel):
         entry, exit_, event = table.entry, table.exit, table.event
         # Every seed drawn up front from one generator.
         rng = np.random.default_rng(self.seed)
-        fold_seed, lgb_seed = (int(v) for v in rng.integers(0, 2**31 - 1, size=2))
+        fold_seed, lgb_seed, bag_seed = (int(v) for v in rng.integers(0, 2**31 - 1, size=3))
+        codes = table.unit_codes()
         params = self._lgb_params(lgb_seed, covariates, levels)
 
         if s.n_trees is None:
-            folds = grouped_folds(table.unit_codes(), s.folds, np.random.default_rng(fold_seed))
-            fold_curves = self._cv_curves(M, entry, exit_, event, weights, folds, cat_idx, params)
+            folds = grouped_folds(codes, s.folds, np.random.default_rng(fold_seed))
+            fold_curves = self._cv_curves(M, entry, exit_, event, weights, codes, folds, cat_idx, params, bag_seed)
             mean_curve = np.nanmean(fold_curves, axis=0)
             n_trees = int(np.nanargmin(mean_curve)) + 1
             self.cv_curve_, self.cv_fold_curves_ = mean_curve, fold_curves
@@ -232,7 +239,7 @@ class BoostedSurvivalTrees(SurvivalModel):
 
         risk_sets = prepare_risk_sets(entry, exit_, event, weights=weights, ties=s.ties)
         booster = lgb.Booster(params, self._dataset(M, event, cat_idx, params))
-        objective = cox_objective(risk_sets)
+        objective = cox_objective(risk_sets, subsample=s.subsample, unit_codes=codes, seed=bag_seed)
         for _ in range(n_trees):
             booster.update(fobj=objective)
         self.booster_ = booster
@@ -243,7 +250,7 @@ class BoostedSurvivalTrees(SurvivalModel):
         self.baseline_ = BaselineHazard.from_risk_sets(risk_sets, eta, interpolation="linear")
         return self
 
-    def _cv_curves(self, M, entry, exit_, event, weights, folds, cat_idx, params) -> np.ndarray:
+    def _cv_curves(self, M, entry, exit_, event, weights, codes, folds, cat_idx, params, bag_seed) -> np.ndarray:
         """Held-out loss per failure after each tree, shape (n_folds, trees run).
 
         The folds grow their boosters in step; boosting stops once the mean
@@ -251,6 +258,7 @@ class BoostedSurvivalTrees(SurvivalModel):
         """
         s = self.settings
         fold_runs = []
+        fold_bag_seeds = np.random.default_rng(bag_seed).integers(0, 2**31 - 1, size=s.folds)
         for k in range(s.folds):
             train, held = folds != k, folds == k
             if not event[train].any():
@@ -266,7 +274,9 @@ class BoostedSurvivalTrees(SurvivalModel):
             def score(raw, _data, rs=rs_held):
                 return "cox_loss_per_event", heldout_loss_per_event(rs, raw), False
 
-            fold_runs.append((booster, cox_objective(rs_train), score))
+            objective = cox_objective(rs_train, subsample=s.subsample, unit_codes=codes[train],
+                                      seed=int(fold_bag_seeds[k]))
+            fold_runs.append((booster, objective, score))
         if not fold_runs:
             raise ModelError("no cross-validation fold has a failure to train on; use fewer folds.")
         curves: list[list[float]] = [[] for _ in fold_runs]
