@@ -279,6 +279,15 @@ def test_weighted_bootstrap_fit_follows_the_copied_units_fit(rossi):
     ages = np.full(small.n_rows, 20.0)
     np.testing.assert_allclose(weighted.fail_probabilities(small.X, ages, [4, 26]),
                                copied.fail_probabilities(small.X, ages, [4, 26]), rtol=0.02)
+    # a cache kept across refits changes nothing
+    cache: dict = {}
+    for _ in range(2):
+        cached = BoostedSurvivalTrees(settings, seed=4).fit_resampled(small, np.random.default_rng(21), cache=cache)
+        np.testing.assert_array_equal(cached.log_risk(small.X), eta_w)
+    assert len(cache) == 1
+    eta_again, p_again = weighted.score_units(small.X, ages, [4, 26])
+    np.testing.assert_array_equal(eta_again, eta_w)
+    np.testing.assert_array_equal(p_again, weighted.fail_probabilities(small.X, ages, [4, 26]))
     # the one-pass horizons equal the per-horizon method
     np.testing.assert_array_equal(weighted.fail_probabilities(small.X, ages, [4, 26])[:, 1],
                                   weighted.fail_probability(small.X, ages, 26))

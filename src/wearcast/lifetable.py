@@ -27,8 +27,10 @@ from wearcast.exceptions import DataError
 CORE_COLUMNS = ("unit_id", "life", "entry_age", "exit_age", "failed", "mode", "in_service")
 
 
-def _draw_unit_counts(codes: np.ndarray, rng: np.random.Generator) -> np.ndarray:
-    """Times each unit code 0..max(codes) is drawn in n_units draws with replacement."""
+def draw_unit_counts(codes: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    """One bootstrap of whole units: how many times each unit code
+    0..max(``codes``) is drawn in n_units draws with replacement from ``rng``,
+    shape (n_units,) int64. ``codes``: (n_rows,) from :meth:`LifeTable.unit_codes`."""
     n_units = int(codes.max()) + 1 if len(codes) else 0
     return np.bincount(rng.integers(0, n_units, size=n_units), minlength=n_units)
 
@@ -257,7 +259,7 @@ class LifeTable:
         :meth:`bootstrap_units` and :meth:`bootstrap_weights` both start from
         this draw, so one seed gives the same resample either way.
         """
-        return _draw_unit_counts(self.unit_codes(), rng)
+        return draw_unit_counts(self.unit_codes(), rng)
 
     def bootstrap_units(self, rng: np.random.Generator) -> "LifeTable":
         """Resample whole unit histories with replacement.
@@ -266,7 +268,7 @@ class LifeTable:
         stay distinct units (risk sets and folds treat them separately).
         """
         codes = self.unit_codes()
-        counts = _draw_unit_counts(codes, rng)
+        counts = draw_unit_counts(codes, rng)
         draws = np.repeat(np.arange(counts.size), counts)  # sorted unit codes, one per draw
         n_units = counts.size
         order = np.argsort(codes, kind="stable")
@@ -293,7 +295,7 @@ class LifeTable:
         as the duplicated table with about 63 % of its rows.
         """
         codes = self.unit_codes()
-        counts = _draw_unit_counts(codes, rng)
+        counts = draw_unit_counts(codes, rng)
         row_counts = counts[codes] if len(codes) else np.zeros(0, np.int64)
         rows = np.flatnonzero(row_counts > 0)
         return self.take_rows(rows), row_counts[rows].astype(float)

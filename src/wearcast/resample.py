@@ -142,13 +142,6 @@ def group_labels(rows: pd.DataFrame, group_by: Sequence[str]) -> list[tuple[str,
     return out
 
 
-def log_risk(model, X: pd.DataFrame) -> np.ndarray:
-    """The model's log relative risk, shape (n,) (``log_risk`` if it has one)."""
-    if hasattr(model, "log_risk"):
-        return np.asarray(model.log_risk(X), float)
-    return np.log(np.maximum(np.asarray(model.risk_score(X), float), np.finfo(float).tiny))
-
-
 # -- fingerprint -------------------------------------------------------------------
 def table_hash(table) -> str:
     """SHA-256 of the life table's contents, column names, covariates and export date."""
@@ -217,6 +210,7 @@ class _RefitInputs:
                                table.as_of, dict(table.meta))
         self.X = rows.loc[:, list(table.covariates)].reset_index(drop=True)
         self.ages = ages
+        self.cache: dict = {}  # per-table work models keep between refits (fit_resampled)
 
     def get(self) -> "_RefitInputs":
         return self
@@ -260,10 +254,11 @@ def _refit_task(inputs, fresh_model, index: int, draw_seed: int, horizons, rank_
     ``inputs``: a :class:`_RefitInputs` or a :class:`_SharedTable` handle to one.
     """
     inputs = inputs.get()
-    fresh_model.fit_resampled(inputs.table, np.random.default_rng(draw_seed))
-    p = np.asarray(fresh_model.fail_probabilities(inputs.X, inputs.ages, horizons), float)
+    fresh_model.fit_resampled(inputs.table, np.random.default_rng(draw_seed), cache=inputs.cache)
+    score, p = fresh_model.score_units(inputs.X, inputs.ages, horizons)
+    p = np.asarray(p, float)
     ranks = risk_ranks(p[:, rank_column])
-    return index, p.astype(np.float32), ranks, log_risk(fresh_model, inputs.X).astype(np.float32)
+    return index, p.astype(np.float32), ranks, np.asarray(score, float).astype(np.float32)
 
 
 def _refit_path(folder: Path, index: int) -> Path:

@@ -64,9 +64,9 @@ def cox_objective(
         grad, hess = cox_gradient_hessian(risk_sets, np.asarray(raw_scores, dtype=float))
         hess = np.maximum(hess, HESSIAN_FLOOR, out=hess)
         if subsample < 1:
-            left_out = (rng.random(n_units) >= subsample)[codes]
-            grad[left_out] = 0.0
-            hess[left_out] = 0.0
+            kept = (rng.random(n_units) < subsample)[codes]
+            grad *= kept  # in place: rows of units left out become 0
+            hess *= kept
         return grad, hess
 
     return objective

@@ -70,13 +70,28 @@ class SurvivalModel(ABC):
         """
         return np.column_stack([self.fail_probability(X, age, float(h)) for h in horizons_days])
 
-    def fit_resampled(self, table, rng: np.random.Generator) -> "SurvivalModel":
+    def score_units(self, X: pd.DataFrame, age: np.ndarray, horizons_days) -> tuple[np.ndarray, np.ndarray]:
+        """``(log relative risk (n,), P(fail within each horizon) (n, H))`` in one call.
+
+        The log risk is ``log_risk(X)`` where the model has one, else the log
+        of ``risk_score(X)``.
+        """
+        if hasattr(self, "log_risk"):
+            score = np.asarray(self.log_risk(X), float)
+        else:
+            score = np.log(np.maximum(np.asarray(self.risk_score(X), float), np.finfo(float).tiny))
+        return score, self.fail_probabilities(X, age, horizons_days)
+
+    def fit_resampled(self, table, rng: np.random.Generator, cache: dict | None = None) -> "SurvivalModel":
         """Fit on one bootstrap of whole units drawn from ``rng``; returns self.
 
         The default fits the table of copied units
         (:meth:`LifeTable.bootstrap_units`); a model that takes case weights
         may fit the same draw as weights (:meth:`LifeTable.bootstrap_weights`)
-        instead, which is the same resample on fewer rows.
+        instead, which is the same resample on fewer rows. ``cache``: a dict
+        the caller keeps across refits of the same ``table``, where a model
+        may keep work that depends on the table alone (results never depend
+        on whether it is given).
         """
         return self.fit(table.bootstrap_units(rng))
 

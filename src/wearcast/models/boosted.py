@@ -43,6 +43,7 @@ import pandas as pd
 from wearcast import _atomic
 from wearcast.config import BoostedSection
 from wearcast.exceptions import BundleError, ModelError
+from wearcast.lifetable import draw_unit_counts
 from wearcast.models._boost_objective import (
     category_levels,
     cox_objective,
@@ -195,36 +196,44 @@ class BoostedSurvivalTrees(SurvivalModel):
     # -- fitting --------------------------------------------------------------
     def fit(self, table) -> "BoostedSurvivalTrees":
         """Fit on a :class:`wearcast.LifeTable`; returns self."""
-        return self._fit(table, None)
+        return self._fit(_Encoded.of(table), None)
 
-    def fit_resampled(self, table, rng: np.random.Generator) -> "BoostedSurvivalTrees":
-        """Fit on one bootstrap of whole units, drawn units' rows once with case
-        weights = times drawn (:meth:`LifeTable.bootstrap_weights`).
+    def fit_resampled(self, table, rng: np.random.Generator, cache: dict | None = None) -> "BoostedSurvivalTrees":
+        """Fit on one bootstrap of whole units: the units drawn
+        (:func:`wearcast.lifetable.draw_unit_counts`, the draw of
+        :meth:`LifeTable.bootstrap_units`) enter once, with case weights =
+        times drawn.
 
         The weights enter the partial likelihood, its derivatives and the
         baseline hazard, so the loss is the copied table's (exactly under
         Breslow ties; under Efron ties a unit's copies failing together are
         not treated as tied with each other). Leaf sizes count distinct rows
         (``min_data_in_leaf``) and weighted Hessian (``min_sum_hessian_in_leaf``).
+        ``cache``: see :meth:`SurvivalModel.fit_resampled`; the encoded
+        covariate matrix of ``table`` is kept there.
         """
-        sample, weights = table.bootstrap_weights(rng)
-        return self._fit(sample, weights)
+        key = ("boosted.encoded", tuple(table.covariates), tuple(table.categorical))
+        encoded = None if cache is None else cache.get(key)
+        if encoded is None:
+            encoded = _Encoded.of(table)
+            if cache is not None:
+                cache[key] = encoded
+        counts = draw_unit_counts(encoded.codes, rng)[encoded.codes]
+        rows = np.flatnonzero(counts > 0)
+        return self._fit(encoded.take(rows), counts[rows].astype(float))
 
-    def _fit(self, table, weights: np.ndarray | None) -> "BoostedSurvivalTrees":
+    def _fit(self, data: "_Encoded", weights: np.ndarray | None) -> "BoostedSurvivalTrees":
         s = self.settings
-        if table.n_failures == 0:
+        if not data.event.any():
             raise ModelError("the life table holds no failure; boosted trees need at least one failure to fit.")
-        covariates = tuple(table.covariates)
+        covariates, levels, M, codes = data.covariates, data.levels, data.M, data.codes
         if not covariates:
             raise ModelError("the life table has no covariates; list some under [fleet] covariates.")
-        levels = category_levels(table.X, table.categorical)
-        M = encode_covariates(table.X, covariates, levels)
         cat_idx = [covariates.index(c) for c in levels]
-        entry, exit_, event = table.entry, table.exit, table.event
+        entry, exit_, event = data.entry, data.exit, data.event
         # Every seed drawn up front from one generator.
         rng = np.random.default_rng(self.seed)
         fold_seed, lgb_seed, bag_seed = (int(v) for v in rng.integers(0, 2**31 - 1, size=3))
-        codes = table.unit_codes()
         params = self._lgb_params(lgb_seed, covariates, levels)
 
         if s.n_trees is None:
@@ -316,9 +325,13 @@ class BoostedSurvivalTrees(SurvivalModel):
 
     def fail_probabilities(self, X: pd.DataFrame, age: np.ndarray, horizons_days) -> np.ndarray:
         """P(fail within each horizon | working at ``age``), shape (n, H); ``X`` scored once."""
+        return self.score_units(X, age, horizons_days)[1]
+
+    def score_units(self, X: pd.DataFrame, age: np.ndarray, horizons_days) -> tuple[np.ndarray, np.ndarray]:
+        """``(eta (n,), P(fail within each horizon) (n, H))``; the trees run once."""
         eta = self.log_risk(X)
         age = np.asarray(age, float)
-        return np.column_stack([self.baseline_.fail_probability(eta, age, float(h)) for h in horizons_days])
+        return eta, np.column_stack([self.baseline_.fail_probability(eta, age, float(h)) for h in horizons_days])
 
     def cumulative_hazard_at(self, X: pd.DataFrame, ages: np.ndarray) -> np.ndarray:
         """``H(age_i | x_i) = exp(eta(x_i)) H0(age_i)``, shape (n,); ages in days."""
@@ -402,6 +415,32 @@ class BoostedSurvivalTrees(SurvivalModel):
         model.cv_fold_curves_ = None if fold_curves is None else np.asarray(fold_curves, dtype=float)
         model.baseline_ = _load_baseline(baseline, folder / BASELINE_FILE)
         return model
+
+
+@dataclass(frozen=True)
+class _Encoded:
+    """A life table as the booster sees it: covariate matrix ``M`` (n, p)
+    (categoricals as codes of ``levels``), ages and failures (n,), unit codes
+    (n,); :meth:`take` selects rows without going back to pandas."""
+
+    covariates: tuple[str, ...]
+    levels: dict[str, list[str]]
+    M: np.ndarray
+    entry: np.ndarray
+    exit: np.ndarray
+    event: np.ndarray
+    codes: np.ndarray
+
+    @classmethod
+    def of(cls, table) -> "_Encoded":
+        covariates = tuple(table.covariates)
+        levels = category_levels(table.X, table.categorical)
+        return cls(covariates, levels, encode_covariates(table.X, covariates, levels),
+                   table.entry, table.exit, table.event, table.unit_codes())
+
+    def take(self, rows: np.ndarray) -> "_Encoded":
+        return _Encoded(self.covariates, self.levels, self.M[rows], self.entry[rows], self.exit[rows],
+                        self.event[rows], self.codes[rows])
 
 
 def _training_scores(booster: lgb.Booster, n: int) -> np.ndarray:
