@@ -44,11 +44,11 @@ class CountingBoosted(BoostedSurvivalTrees):
     fits = 0
     fail_at: int | None = None
 
-    def _fit(self, table, weights):  # both fit and fit_resampled come through here
+    def _fit(self, data, weights, bins=None):  # both fit and fit_resampled come through here
         if CountingBoosted.fail_at is not None and CountingBoosted.fits >= CountingBoosted.fail_at:
             raise RuntimeError("injected stop")
         CountingBoosted.fits += 1
-        return super()._fit(table, weights)
+        return super()._fit(data, weights, bins)
 
     def unfitted_copy(self, seed):
         base = super().unfitted_copy(seed)
@@ -161,10 +161,34 @@ def test_changed_table_or_settings_never_reuse_checkpoints(gbsg2, boosted, tmp_p
 def test_checkpoint_files_are_plain_numeric_arrays(gbsg2, boosted, tmp_path):
     rs.bootstrap_refits(gbsg2, boosted, 3, 9, HORIZONS, jobs=1, checkpoint_dir=tmp_path)
     with np.load(tmp_path / "refit_0002.npz", allow_pickle=False) as data:
-        assert set(data.files) == {"fingerprint", "index", "p_fail", "rank", "log_risk"}
+        # no group_by: one group (the fleet), its count pmf per horizon counted in the worker
+        assert set(data.files) == {"fingerprint", "index", "p_fail", "rank", "log_risk", "members_key",
+                                   "pmf_0_0", "pmf_0_1"}
         assert data["p_fail"].dtype == np.float32 and data["p_fail"].shape == (gbsg2.in_service().n_rows, 2)
         assert sorted(data["rank"].tolist()) == list(range(1, gbsg2.in_service().n_rows + 1))
     assert not list(tmp_path.glob("*.wearcast-tmp"))
+
+
+def test_counts_from_workers_equal_counts_made_in_the_summary(gbsg2, boosted, serial, tmp_path):
+    # Each refit stores its groups' count pmfs; a rerun with other groups must
+    # not use them (it counts afresh, refitting nothing) and a rerun with the
+    # same groups must give what counting in the summary gives.
+    first = rs.bootstrap_refits(gbsg2, boosted, 12, 2026, HORIZONS, jobs=1, top_k=30, group_by=["tgrade"],
+                                checkpoint_dir=tmp_path)
+    assert_same_summary(serial, first)
+    by_menopause = rs.bootstrap_refits(gbsg2, boosted, 12, 2026, HORIZONS, jobs=1, top_k=30,
+                                       group_by=["menostat"], checkpoint_dir=tmp_path)
+    assert by_menopause.computed == 0 and by_menopause.groups[1][0] == "menostat"
+    fresh = rs.bootstrap_refits(gbsg2, boosted, 12, 2026, HORIZONS, jobs=1, top_k=30, group_by=["menostat"])
+    assert_same_summary(fresh, by_menopause)
+    for stored, counted in zip(fresh.count_pmf, by_menopause.count_pmf):
+        assert np.array_equal(stored, counted)
+    # the stored pmfs are what count_pmf gives on the refit's float32 probabilities
+    from wearcast._poisson_binomial import count_pmf
+
+    with np.load(tmp_path / "refit_0004.npz", allow_pickle=False) as data:
+        expected = count_pmf(data["p_fail"][:, 1].astype(float))
+        np.testing.assert_array_equal(data["pmf_0_1"], np.trim_zeros(expected, "b"))
 
 
 def test_unit_chunks_give_the_same_summary(gbsg2, boosted, serial, monkeypatch):

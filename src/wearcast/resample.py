@@ -142,6 +142,30 @@ def group_labels(rows: pd.DataFrame, group_by: Sequence[str]) -> list[tuple[str,
     return out
 
 
+def group_members(groupings, n_units: int) -> list[tuple[tuple[str, str], np.ndarray]]:
+    """``[((column, level), unit positions), ...]``, the whole fleet first, levels sorted."""
+    members = [(FLEET, np.arange(n_units))]
+    for col, labels in groupings:
+        for level in sorted(set(labels)):
+            members.append(((col, str(level)), np.flatnonzero(labels == level)))
+    return members
+
+
+def members_key(members) -> str:
+    """SHA-256 of the groups and their units: whether stored per-group counts still apply."""
+    h = hashlib.sha256()
+    for key, idx in members:
+        h.update(json.dumps(list(key)).encode())
+        h.update(np.asarray(idx, np.int64).tobytes())
+    return h.hexdigest()
+
+
+def _group_pmfs(p: np.ndarray, members) -> list[list[np.ndarray]]:
+    """Per group, per horizon: the failure-count pmf of one refit, trailing zeros cut."""
+    p64 = np.asarray(p, float)
+    return [[np.trim_zeros(count_pmf(p64[idx, h]), "b") for h in range(p64.shape[1])] for _, idx in members]
+
+
 # -- fingerprint -------------------------------------------------------------------
 def table_hash(table) -> str:
     """SHA-256 of the life table's contents, column names, covariates and export date."""
@@ -201,10 +225,13 @@ class _RefitInputs:
     covariate columns (cheaper to resample), and the in-service units'
     covariates and current ages (the same for every refit)."""
 
-    def __init__(self, table):
+    def __init__(self, table, group_by: Sequence[str] = ()):
         from wearcast.lifetable import CORE_COLUMNS, LifeTable
 
         rows, _, ages = current_units(table)
+        # the fleet-count groups, so each refit's count pmfs are computed in the worker
+        self.members = group_members(group_labels(rows, group_by), len(ages))
+        self.members_key = members_key(self.members)
         columns = list(dict.fromkeys([*CORE_COLUMNS, *table.covariates]))
         self.table = LifeTable(table.frame.loc[:, columns], table.covariates, table.categorical,
                                table.as_of, dict(table.meta))
@@ -226,30 +253,33 @@ class _SharedTable:
 
     _cache: dict = {}
 
-    def __init__(self, table, folder: Path, key: str):
+    def __init__(self, table, folder: Path, key: str, group_by: Sequence[str] = ()):
         self.path = folder / f"table-{key[:16]}.parquet"
         self.key = key
         self.parts = (table.covariates, table.categorical, table.as_of)
+        self.group_by = tuple(group_by)
         table.frame.to_parquet(self.path, index=False)
         self._inputs = None
 
     def __getstate__(self):
-        return {"path": self.path, "key": self.key, "parts": self.parts, "_inputs": None}
+        return {"path": self.path, "key": self.key, "parts": self.parts, "group_by": self.group_by,
+                "_inputs": None}
 
     def get(self) -> _RefitInputs:
         if self._inputs is None:
-            if self.key not in _SharedTable._cache:
+            if (self.key, self.group_by) not in _SharedTable._cache:
                 from wearcast.lifetable import LifeTable
 
                 _SharedTable._cache.clear()
                 table = LifeTable(pd.read_parquet(self.path), *self.parts)
-                _SharedTable._cache[self.key] = _RefitInputs(table)
-            self._inputs = _SharedTable._cache[self.key]
+                _SharedTable._cache[(self.key, self.group_by)] = _RefitInputs(table, self.group_by)
+            self._inputs = _SharedTable._cache[(self.key, self.group_by)]
         return self._inputs
 
 
 def _refit_task(inputs, fresh_model, index: int, draw_seed: int, horizons, rank_column: int):
-    """Fit one bootstrap refit; returns (index, p (n, H) float32, ranks (n,), log risk (n,)).
+    """Fit one bootstrap refit; returns (index, p (n, H) float32, ranks (n,), log risk (n,),
+    (members key, per-group per-horizon count pmfs)).
 
     ``inputs``: a :class:`_RefitInputs` or a :class:`_SharedTable` handle to one.
     """
@@ -258,7 +288,10 @@ def _refit_task(inputs, fresh_model, index: int, draw_seed: int, horizons, rank_
     score, p = fresh_model.score_units(inputs.X, inputs.ages, horizons)
     p = np.asarray(p, float)
     ranks = risk_ranks(p[:, rank_column])
-    return index, p.astype(np.float32), ranks, np.asarray(score, float).astype(np.float32)
+    p32 = p.astype(np.float32)
+    # counts from the stored float32 values, as a summary without these pmfs would
+    pmfs = (inputs.members_key, _group_pmfs(p32, inputs.members))
+    return index, p32, ranks, np.asarray(score, float).astype(np.float32), pmfs
 
 
 def _refit_path(folder: Path, index: int) -> Path:
@@ -266,10 +299,11 @@ def _refit_path(folder: Path, index: int) -> Path:
 
 
 def _save_refit(folder: Path, fingerprint: str, result) -> None:
-    index, p, ranks, score = result
+    index, p, ranks, score, (key, pmfs) = result
+    counts = {f"pmf_{g}_{h}": pmf for g, per_h in enumerate(pmfs) for h, pmf in enumerate(per_h)}
     buffer = io.BytesIO()
     np.savez(buffer, fingerprint=np.array(fingerprint), index=np.array(index, dtype=np.int64),
-             p_fail=p, rank=ranks, log_risk=score)
+             p_fail=p, rank=ranks, log_risk=score, members_key=np.array(key), **counts)
     _atomic.write_bytes(_refit_path(folder, index), buffer.getvalue())
 
 
@@ -282,6 +316,9 @@ def _load_refit(folder: Path, index: int, fingerprint: str | None = None, shape=
                                             or int(data["index"]) != index):
                 return None
             arrays = {k: data[k] for k in ("p_fail", "rank", "log_risk")}
+            if "members_key" in data.files:
+                arrays["members_key"] = str(data["members_key"])
+                arrays["pmfs"] = {k: data[k] for k in data.files if k.startswith("pmf_")}
     except (OSError, ValueError, KeyError, zipfile.BadZipFile, EOFError):
         return None
     if shape is not None and arrays["p_fail"].shape != shape:
@@ -320,9 +357,9 @@ class _Progress:
 
 
 # -- running the refits -----------------------------------------------------------------------
-def _run_joblib(table, copies, draws, todo, horizons, rank_column, jobs, on_result) -> None:
+def _run_joblib(table, group_by, copies, draws, todo, horizons, rank_column, jobs, on_result) -> None:
     if jobs == 1 or len(todo) <= 1:
-        inputs = _RefitInputs(table)
+        inputs = _RefitInputs(table, group_by)
         for i in todo:
             on_result(_refit_task(inputs, copies[i], i, draws[i], horizons, rank_column))
         return
@@ -330,14 +367,14 @@ def _run_joblib(table, copies, draws, todo, horizons, rank_column, jobs, on_resu
 
     n_jobs = -1 if jobs == 0 else jobs
     with tempfile.TemporaryDirectory(prefix="wearcast-table-") as folder:
-        shared = _SharedTable(table, Path(folder), table_hash(table))
+        shared = _SharedTable(table, Path(folder), table_hash(table), group_by)
         parallel = Parallel(n_jobs=n_jobs, return_as="generator_unordered")
         for result in parallel(delayed(_refit_task)(shared, copies[i], i, draws[i], horizons, rank_column)
                                for i in todo):
             on_result(result)
 
 
-def _run_dask(scheduler, table, copies, draws, todo, horizons, rank_column, on_result) -> None:
+def _run_dask(scheduler, table, group_by, copies, draws, todo, horizons, rank_column, on_result) -> None:
     try:
         from dask.distributed import Client, as_completed
     except ImportError as exc:
@@ -354,7 +391,7 @@ def _run_dask(scheduler, table, copies, draws, todo, horizons, rank_column, on_r
             "(for example tls://host:8786) and that the scheduler is running."
         ) from exc
     try:
-        shared = client.scatter(_RefitInputs(table), broadcast=True)
+        shared = client.scatter(_RefitInputs(table, group_by), broadcast=True)
         futures = [client.submit(_refit_task, shared, copies[i], i, draws[i], horizons, rank_column,
                                  pure=False) for i in todo]
         for _, result in as_completed(futures, with_results=True):
@@ -434,9 +471,9 @@ def bootstrap_refits(
 
         try:
             if scheduler is not None:
-                _run_dask(scheduler, table, copies, draws, todo, horizons, rank_column, on_result)
+                _run_dask(scheduler, table, group_by, copies, draws, todo, horizons, rank_column, on_result)
             else:
-                _run_joblib(table, copies, draws, todo, horizons, rank_column, jobs, on_result)
+                _run_joblib(table, group_by, copies, draws, todo, horizons, rank_column, jobs, on_result)
         finally:
             bar.close()
         summary = _summarise(folder, fingerprint, n_refits, shape, groupings, top_k)
@@ -455,10 +492,8 @@ def _as_int(h: float):
 # -- summaries from the files ----------------------------------------------------------------
 def _summarise(folder, fingerprint, n_refits, shape, groupings, top_k) -> dict:
     n_units, n_h = shape
-    members = [(FLEET, np.arange(n_units))]
-    for col, labels in groupings:
-        for level in sorted(set(labels)):
-            members.append(((col, str(level)), np.flatnonzero(labels == level)))
+    members = group_members(groupings, n_units)
+    key = members_key(members)
     group_expected = np.zeros((n_refits, len(members), n_h))
     mixtures = [np.zeros((n_h, len(idx) + 1)) for _, idx in members]
 
@@ -478,10 +513,13 @@ def _summarise(folder, fingerprint, n_refits, shape, groupings, top_k) -> dict:
             p = data["p_fail"]
             if start == 0:
                 p64 = p.astype(float)
+                stored = data.get("pmfs") if data.get("members_key") == key else None
                 for g, (_, idx) in enumerate(members):
                     group_expected[b, g] = p64[idx].sum(axis=0)
                     for h in range(n_h):
-                        mixtures[g][h] += count_pmf(p64[idx, h])
+                        # counted in the worker when the groups were the same; else here
+                        pmf = stored[f"pmf_{g}_{h}"] if stored else count_pmf(p64[idx, h])
+                        mixtures[g][h][:len(pmf)] += pmf
             p_block[b] = p[start:stop]
             r_block[b] = data["rank"][start:stop]
         q = np.quantile(p_block.astype(float), [INTERVAL[0], 0.5, INTERVAL[1]], axis=0)

@@ -210,19 +210,27 @@ class BoostedSurvivalTrees(SurvivalModel):
         not treated as tied with each other). Leaf sizes count distinct rows
         (``min_data_in_leaf``) and weighted Hessian (``min_sum_hessian_in_leaf``).
         ``cache``: see :meth:`SurvivalModel.fit_resampled`; the encoded
-        covariate matrix of ``table`` is kept there.
+        covariate matrix of ``table`` and LightGBM's feature bins found on the
+        whole table are kept there (the bins are found on the whole table
+        either way, as in the main fit).
         """
         key = ("boosted.encoded", tuple(table.covariates), tuple(table.categorical))
-        encoded = None if cache is None else cache.get(key)
-        if encoded is None:
+        cache = {} if cache is None else cache
+        if key not in cache:
             encoded = _Encoded.of(table)
-            if cache is not None:
-                cache[key] = encoded
+            # LightGBM's feature bins found once on the whole table (as the main fit
+            # finds them) and reused: a refit's rows are only sorted into them
+            params = self._lgb_params(0, encoded.covariates, encoded.levels)
+            cat_idx = [encoded.covariates.index(c) for c in encoded.levels]
+            bins = lgb.Dataset(encoded.M, label=encoded.event.astype(float), categorical_feature=cat_idx or "auto",
+                               params=params, free_raw_data=True).construct()
+            cache[key] = (encoded, bins)
+        encoded, bins = cache[key]
         counts = draw_unit_counts(encoded.codes, rng)[encoded.codes]
         rows = np.flatnonzero(counts > 0)
-        return self._fit(encoded.take(rows), counts[rows].astype(float))
+        return self._fit(encoded.take(rows), counts[rows].astype(float), bins)
 
-    def _fit(self, data: "_Encoded", weights: np.ndarray | None) -> "BoostedSurvivalTrees":
+    def _fit(self, data: "_Encoded", weights: np.ndarray | None, bins=None) -> "BoostedSurvivalTrees":
         s = self.settings
         if not data.event.any():
             raise ModelError("the life table holds no failure; boosted trees need at least one failure to fit.")
@@ -247,7 +255,7 @@ class BoostedSurvivalTrees(SurvivalModel):
             self.cv_curve_ = self.cv_fold_curves_ = None
 
         risk_sets = prepare_risk_sets(entry, exit_, event, weights=weights, ties=s.ties)
-        booster = lgb.Booster(params, self._dataset(M, event, cat_idx, params))
+        booster = lgb.Booster(params, self._dataset(M, event, cat_idx, params, reference=bins))
         objective = cox_objective(risk_sets, subsample=s.subsample, unit_codes=codes, seed=bag_seed)
         for _ in range(n_trees):
             booster.update(fobj=objective)
