@@ -26,7 +26,7 @@ def available() -> bool:
 
 
 def _gradient_hessian_loops(weights, r, row_fail_entry, row_fail_exit, event_rows, event_group,
-                            event_rank, group_count, group_weight, efron, grad, hess):
+                            event_rank, group_count, group_weight, row_group, efron, grad, hess):
     # r: (n,) shifted risks w_i exp(eta_i - max eta), computed by NumPy's
     # vectorised exp before the call
     n = r.size
@@ -84,24 +84,23 @@ def _gradient_hessian_loops(weights, r, row_fail_entry, row_fail_exit, event_row
         cum_a[g + 1] = cum_a[g] + a[g]
         cum_b[g + 1] = cum_b[g] + b[g]
     for i in range(n):
+        # each row's values in float64, stored once (so a float32 output is one rounding)
         lo = row_fail_entry[i]
         hi = row_fail_exit[i]
         ri = r[i]
         A = cum_a[hi] - cum_a[lo]
         B = cum_b[hi] - cum_b[lo]
-        grad[i] = ri * A
-        hess[i] = ri * A - ri * ri * B
-    for k in range(event_rows.size):
-        j = event_rows[k]
-        grad[j] -= weights[j]
-        if efron:
-            g = event_group[k]
-            rj = r[j]
-            grad[j] -= rj * a2[g]
-            hess[j] += -rj * a2[g] + rj * rj * (2.0 * b2[g] - b3[g])
-    for i in range(n):
-        if hess[i] < 0.0:
-            hess[i] = 0.0
+        gi = ri * A
+        hi_ = ri * A - ri * ri * B
+        g = row_group[i]
+        if g >= 0:  # the row ends in a failure
+            gi -= weights[i]
+            if efron:
+                # its own term: d/d eta of -(k/d) E carries an extra (1 - k/d)
+                gi -= ri * a2[g]
+                hi_ += -ri * a2[g] + ri * ri * (2.0 * b2[g] - b3[g])
+        grad[i] = gi
+        hess[i] = hi_ if hi_ > 0.0 else 0.0
 
 
 if njit is not None:
@@ -110,19 +109,21 @@ else:  # pragma: no cover
     _compiled = None
 
 
-def gradient_hessian(rs, eta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def gradient_hessian(rs, eta: np.ndarray, dtype=np.float64) -> tuple[np.ndarray, np.ndarray]:
     """``(grad, hess)``, both shape (n,), for prepared risk sets ``rs`` and
     log relative risks ``eta`` (n,); see ``cox_gradient_hessian`` for the
-    formulas. Raises ``RuntimeError`` when numba is missing."""
+    formulas. ``dtype`` of the outputs: float32 stores the float64 results
+    rounded, as ``astype(np.float32)`` would (what LightGBM takes).
+    Raises ``RuntimeError`` when numba is missing."""
     if _compiled is None:  # pragma: no cover
         raise RuntimeError("the compiled Cox kernel needs numba; pip install numba")
     eta = np.asarray(eta, dtype=np.float64)
     weights = np.ascontiguousarray(rs.weights, dtype=np.float64)
     r = np.exp(eta - (float(eta.max()) if eta.size else 0.0))
     r *= weights
-    grad = np.empty(rs.n)
-    hess = np.empty(rs.n)
+    grad = np.empty(rs.n, dtype=dtype)
+    hess = np.empty(rs.n, dtype=dtype)
     _compiled(weights, r,
               rs.row_fail_entry, rs.row_fail_exit, rs.event_rows, rs.event_group, rs.event_rank,
-              rs.group_count, rs.group_weight, rs.ties == "efron", grad, hess)
+              rs.group_count, rs.group_weight, rs.row_group, rs.ties == "efron", grad, hess)
     return grad, hess
