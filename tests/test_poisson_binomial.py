@@ -101,3 +101,18 @@ def test_quantiles_follow_the_binomial_ppf():
     pmf = poisson_binomial_pmf(np.full(200, 0.1))
     q = np.array([0.05, 0.5, 0.95])
     assert pmf_quantile(pmf, q).tolist() == stats.binom.ppf(q, 200, 0.1).astype(int).tolist()
+
+
+@pytest.mark.parametrize("n, scale", [(1, 0.3), (40, 0.4), (1500, 0.03), (6000, 0.02)])
+def test_compiled_recursion_equals_the_product_tree(n, scale):
+    # Two exact algorithms for the same pmf (one unit at a time vs a tree of
+    # polynomial products); both truncate at the same count, where the
+    # recursion is exact below the cut.
+    from wearcast import _poisson_binomial as pb
+
+    if pb._recursion is None:
+        pytest.skip("numba is not installed")
+    p = np.clip(np.random.default_rng(n).gamma(2.0, scale / 2.0, n), 0.0, 0.5)
+    k_max = pb._truncation(p)
+    np.testing.assert_allclose(pb._product_pmf(p, k_max), pb._product_tree(p, k_max), rtol=0, atol=1e-12)
+    np.testing.assert_allclose(pb._product_pmf(p, 3), pb._product_tree(p, 3), rtol=0, atol=1e-12)

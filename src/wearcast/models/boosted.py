@@ -51,7 +51,7 @@ from wearcast.models._boost_objective import (
     grouped_folds,
     heldout_loss_per_event,
 )
-from wearcast.models._cox_kernels import prepare_risk_sets
+from wearcast.models._cox_kernels import age_ranks_of, prepare_risk_sets
 from wearcast.models.base import SurvivalModel
 from wearcast.models.baseline import BaselineHazard
 
@@ -217,7 +217,7 @@ class BoostedSurvivalTrees(SurvivalModel):
         key = ("boosted.encoded", tuple(table.covariates), tuple(table.categorical))
         cache = {} if cache is None else cache
         if key not in cache:
-            encoded = _Encoded.of(table)
+            encoded = _Encoded.of(table, with_ranks=True)
             # LightGBM's feature bins found once on the whole table (as the main fit
             # finds them) and reused: a refit's rows are only sorted into them
             params = self._lgb_params(0, encoded.covariates, encoded.levels)
@@ -254,7 +254,7 @@ class BoostedSurvivalTrees(SurvivalModel):
             n_trees = int(s.n_trees)
             self.cv_curve_ = self.cv_fold_curves_ = None
 
-        risk_sets = prepare_risk_sets(entry, exit_, event, weights=weights, ties=s.ties)
+        risk_sets = data.risk_sets(weights, s.ties)
         booster = lgb.Booster(params, self._dataset(M, event, cat_idx, params, reference=bins))
         objective = cox_objective(risk_sets, subsample=s.subsample, unit_codes=codes, seed=bag_seed)
         for _ in range(n_trees):
@@ -438,17 +438,26 @@ class _Encoded:
     exit: np.ndarray
     event: np.ndarray
     codes: np.ndarray
+    ages: np.ndarray | None = None  # sorted distinct ages of the table taken from, and the rows'
+    entry_rank: np.ndarray | None = None  # ranks in them (see prepare_risk_sets(age_ranks=));
+    exit_rank: np.ndarray | None = None  # None: sort afresh
 
     @classmethod
-    def of(cls, table) -> "_Encoded":
+    def of(cls, table, *, with_ranks: bool = False) -> "_Encoded":
         covariates = tuple(table.covariates)
         levels = category_levels(table.X, table.categorical)
+        ranks = age_ranks_of(table.entry, table.exit) if with_ranks else (None, None, None)
         return cls(covariates, levels, encode_covariates(table.X, covariates, levels),
-                   table.entry, table.exit, table.event, table.unit_codes())
+                   table.entry, table.exit, table.event, table.unit_codes(), *ranks)
 
     def take(self, rows: np.ndarray) -> "_Encoded":
+        ranks = (None, None, None) if self.ages is None else (self.ages, self.entry_rank[rows], self.exit_rank[rows])
         return _Encoded(self.covariates, self.levels, self.M[rows], self.entry[rows], self.exit[rows],
-                        self.event[rows], self.codes[rows])
+                        self.event[rows], self.codes[rows], *ranks)
+
+    def risk_sets(self, weights, ties: str):
+        ranks = None if self.ages is None else (self.ages, self.entry_rank, self.exit_rank)
+        return prepare_risk_sets(self.entry, self.exit, self.event, weights=weights, ties=ties, age_ranks=ranks)
 
 
 def _training_scores(booster: lgb.Booster, n: int) -> np.ndarray:
