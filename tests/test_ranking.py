@@ -64,10 +64,11 @@ def test_columns_order_and_ages(scenario):
 def test_true_probability_inside_refit_interval_for_most_units(scenario):
     # Oracle: the scenario's true P(fail within 365 days | working now).
     # Measured with these seeds (1,500 units, 1,392 in service, 20 refits, 60
-    # trees of depth 2): the truth lies inside the 5-95 % interval for 74.6 %
-    # of in-service units at 365 days (11.9 % below, 13.5 % above) and 70.8 %
-    # at 90 days (6.0 % below, 23.2 % above), against 90 % nominal. With 100
-    # trees and 30 refits it was 82.9 % at 365 days. Bootstrap refit intervals
+    # trees of depth 2, unit-subsampled trees and weighted refits): the truth
+    # lies inside the 5-95 % interval for 73.3 % of in-service units at 365
+    # days (12.6 % below, 14.2 % above) and 75.6 % at 90 days (8.0 % below,
+    # 16.4 % above), against 90 % nominal. With 100 trees and 30 refits:
+    # 79.3 % at 365 days, 78.5 % at 90 days. Bootstrap refit intervals
     # show sampling variability only; the model's own bias (shrunken tree
     # effects, a step baseline hazard that is flat between failure ages) is not
     # in them, and 20 refits give rough 5 %/95 % points. The bound below is
