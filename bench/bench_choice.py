@@ -306,11 +306,10 @@ def peer_risks(table: LifeTable, X: pd.DataFrame, train_rows, test_ep, train_ep,
 
 
 PEERS = ["lifelines_cox", "sksurv_gbsa", "sksurv_rsf", "xgboost_cox"]
-PAIRED = "wearcast_paired"  # the choice under [validation] se_rule = "paired" (with --paired)
 
 
 # -- part 1 ---------------------------------------------------------------------------
-def run_dataset(ds: Dataset, config, seed: int, k: int = K_OUTER, paired_config=None) -> dict:
+def run_dataset(ds: Dataset, config, seed: int, k: int = K_OUTER) -> dict:
     table = life_table(ds)
     X = design(table)
     episodes = score_episodes(table)
@@ -329,23 +328,16 @@ def run_dataset(ds: Dataset, config, seed: int, k: int = K_OUTER, paired_config=
             wearcast_s = time.perf_counter() - tw
         X_test = table.X.iloc[test_ep.rows].reset_index(drop=True)
         risks = {"wearcast": np.asarray(outcome.main_model.risk_score(X_test), float)}
-        chosen = {"wearcast": outcome.chosen}
-        if paired_config is not None:  # the same choice with [validation] se_rule = "paired"
-            with tempfile.TemporaryDirectory() as tmp, warnings.catch_warnings():
-                warnings.simplefilter("ignore")
-                other = fitting.fit_models(train_table, paired_config, Path(tmp), seed=rest[2 * i])
-            risks[PAIRED] = np.asarray(other.main_model.risk_score(X_test), float)
-            chosen[PAIRED] = other.chosen
         tp = time.perf_counter()
         risks.update(peer_risks(table, X, train_rows, test_ep, train_ep, entry_used, rest[2 * i + 1]))
         peers_s = time.perf_counter() - tp
         for name, risk in risks.items():
             rows.append({
                 "dataset": ds.name, "fold": i + 1, "model": name,
-                "chosen": chosen.get(name),
+                "chosen": outcome.chosen if name == "wearcast" else None,
                 "harrell": harrell_c(test_ep.exit, test_ep.event, risk).c,
                 "truncation": truncation_aware_c(test_ep.entry, test_ep.exit, test_ep.event, risk).c,
-                "seconds": wearcast_s if name in chosen else peers_s,
+                "seconds": wearcast_s if name == "wearcast" else peers_s,
             })
         print(f"  {ds.name} fold {i + 1}: chose {outcome.chosen} ({wearcast_s:.1f} s; peers {peers_s:.1f} s)",
               flush=True)
@@ -361,18 +353,13 @@ def summarise_dataset(result: dict) -> dict:
     for model, part in per.groupby("model", sort=False):
         stats[model] = {m: (float(part[m].mean()), float(part[m].std(ddof=1))) for m in ("harrell", "truncation")}
     chosen = per.loc[per["model"] == "wearcast", "chosen"].tolist()
-    out = {"stats": stats, "chosen": chosen,
-           "chosen_paired": per.loc[per["model"] == PAIRED, "chosen"].tolist()}
+    out = {"stats": stats, "chosen": chosen}
     for m in ("harrell", "truncation"):
         best_peer = max(PEERS, key=lambda p: stats[p][m][0])
         gap = stats["wearcast"][m][0] - stats[best_peer][m][0]
         out[f"best_peer_{m}"] = best_peer
         out[f"gap_{m}"] = gap
-        if PAIRED in stats:
-            out[f"gap_paired_{m}"] = stats[PAIRED][m][0] - stats[best_peer][m][0]
     out["pass"] = min(out["gap_harrell"], out["gap_truncation"]) >= -TARGET_GAP
-    if PAIRED in stats:
-        out["pass_paired"] = min(out["gap_paired_harrell"], out["gap_paired_truncation"]) >= -TARGET_GAP
     return out
 
 
@@ -483,32 +470,23 @@ def render_real(results: list[dict]) -> str:
     for r in results:
         s = summarise_dataset(r)
         lines.append(f"#### {r['dataset']} ({r['library']}): {r['source']}")
-        paired_note = (f" With se_rule = \"paired\": {', '.join(s['chosen_paired'])}."
-                       if s["chosen_paired"] else "")
         lines.append(f"{r['units']} units, {r['rows']} rows, {r['failures']} failures, {r['delayed']} late "
                      f"entries, {r['covariates']} covariates; entry: {r['entry']}. "
-                     f"wearcast chose per fold: {', '.join(s['chosen'])}.{paired_note}\n")
+                     f"wearcast chose per fold: {', '.join(s['chosen'])}.\n")
         if DATASETS[r["dataset"]].note:
             lines.append(f"Note: {DATASETS[r['dataset']].note}\n")
         lines.append("| model | Harrell C | truncation-aware C |")
         lines.append("|---|---|---|")
-        for model in ["wearcast", *([PAIRED] if s["chosen_paired"] else []), *PEERS]:
+        for model in ["wearcast", *PEERS]:
             st = s["stats"][model]
-            label = {"wearcast": "**wearcast (chosen)**", PAIRED: "wearcast, se_rule paired"}.get(model, model)
+            label = "**wearcast (chosen)**" if model == "wearcast" else model
             lines.append(f"| {label} | {_ms(st['harrell'])} | {_ms(st['truncation'])} |")
         lines.append("")
-        paired_cells = ""
-        if s["chosen_paired"]:
-            paired_cells = (f" {s['gap_paired_harrell']:+.3f} / {s['gap_paired_truncation']:+.3f} | "
-                            f"{'pass' if s['pass_paired'] else 'MISS'} |")
         summary_rows.append(
             f"| {r['dataset']} | {s['best_peer_harrell']} | {s['gap_harrell']:+.3f} | {s['best_peer_truncation']} | "
-            f"{s['gap_truncation']:+.3f} | {'pass' if s['pass'] else 'MISS'} |{paired_cells}")
-    paired = any(summarise_dataset(r)["chosen_paired"] for r in results)
-    extra_head = " paired rule: gaps (Harrell / trunc.) | paired rule target |" if paired else ""
-    extra_rule = "---|---|" if paired else ""
-    head = ["| dataset | best peer (Harrell) | gap | best peer (trunc.) | gap | target (gap ≥ −0.01) |" + extra_head,
-            "|---|---|---|---|---|---|" + extra_rule, *summary_rows, ""]
+            f"{s['gap_truncation']:+.3f} | {'pass' if s['pass'] else 'MISS'} |")
+    head = ["| dataset | best peer (Harrell) | gap | best peer (trunc.) | gap | target (gap ≥ −0.01) |",
+            "|---|---|---|---|---|---|", *summary_rows, ""]
     return "\n".join(head + lines)
 
 
@@ -590,8 +568,6 @@ def main(argv=None) -> None:
     parser.add_argument("--cache", type=Path, default=Path(os.environ.get("WEARCAST_BENCH_CACHE",
                                                                           "/tmp/wearcast-bench-cache")))
     parser.add_argument("--out", type=Path, default=None, help="also write the raw results as JSON here")
-    parser.add_argument("--paired", action="store_true",
-                        help='also run the choice with [validation] se_rule = "paired" (doubles part 1)')
     args = parser.parse_args(argv)
     config = config_from_dict(LIGHT, source="bench_choice LIGHT")
     seeds = np.random.default_rng(SEED).integers(0, 2**31 - 1, size=len(DATASETS))
@@ -601,12 +577,7 @@ def main(argv=None) -> None:
     if not args.no_real:
         for name in args.datasets:
             print(f"{name} ...", flush=True)
-            paired_config = None
-            if args.paired:
-                light = json.loads(json.dumps(LIGHT))
-                light["validation"]["se_rule"] = "paired"
-                paired_config = config_from_dict(light, source="bench_choice LIGHT, paired rule")
-            results.append(run_dataset(DATASETS[name], config, seed_of[name], paired_config=paired_config))
+            results.append(run_dataset(DATASETS[name], config, seed_of[name]))
     real_s = time.perf_counter() - t0
     if not args.no_runtime:
         args.cache.mkdir(parents=True, exist_ok=True)

@@ -55,28 +55,3 @@ def test_small_fleets_restrict_candidates(failures, expected):
     else:
         assert names == expected
         assert "fewer than 10 per covariate" in why
-
-
-def test_paired_rule_sees_a_gain_that_holds_on_every_fold():
-    # Hand-built folds: the forest beats Cox by 0.02 on every fold while the folds
-    # themselves differ by 0.1 (easy and hard folds for both models).
-    import numpy as np
-
-    base = np.array([0.60, 0.70, 0.65, 0.55, 0.75])
-    fold_c = pd.DataFrame({"cox": base, "forest_sqrt": base + np.array([0.02, 0.025, 0.015, 0.02, 0.02])})
-    k = len(base)
-    s = _summary([(name, fold_c[name].mean(), fold_c[name].std(ddof=1) / np.sqrt(k), 100, 100)
-                  for name in ("cox", "forest_sqrt")])
-    # the published rule: Cox (0.650) is within the forest's se (0.035) of 0.670
-    assert choose(s).name == "cox"
-    # paired: the difference is 0.020 with se 0.0016, so Cox is out
-    paired = choose(s, se_rule="paired", fold_c=fold_c)
-    assert paired.name == "forest_sqrt"
-    assert paired.candidates.loc["cox", "se_used"] == pytest.approx(np.std([0.02, 0.025, 0.015, 0.02, 0.02], ddof=1) / np.sqrt(5))
-    # a noisy difference (the forest ahead on average, behind on two folds) keeps Cox
-    noisy = fold_c.assign(forest_sqrt=base + np.array([0.08, -0.03, 0.06, -0.02, 0.01]))
-    s2 = _summary([(name, noisy[name].mean(), noisy[name].std(ddof=1) / np.sqrt(k), 100, 100)
-                   for name in ("cox", "forest_sqrt")])
-    assert choose(s2, se_rule="paired", fold_c=noisy).name == "cox"
-    with pytest.raises(ValueError, match="fold_c"):
-        choose(s, se_rule="paired")

@@ -131,7 +131,6 @@ class ValidationSection:
     calibration_share: float = 0.25  # a candidate whose expected/observed count is off by more is not eligible
     bootstrap_metrics: str = "concordance"  # "concordance": bootstrap the C indices only; "all": every metric
     jobs: int = 0  # worker processes for the cross-validation fits; 0 = all cores (results do not depend on it)
-    se_rule: str = "model"  # one-SE rule: "model" = se of the best model's C; "paired" = se of each difference
 
 
 @dataclass(frozen=True)
@@ -180,7 +179,6 @@ _CHOICES: dict[tuple[type, str], tuple[str, ...]] = {
     (ModelSection, "choose"): ("auto", "boosted", "forest", "cox", "boosted_d1", "boosted_d2", "boosted_d3",
                                "forest_bagging", "forest_sqrt"),
     (ValidationSection, "bootstrap_metrics"): ("concordance", "all"),
-    (ValidationSection, "se_rule"): ("model", "paired"),
 }
 
 

@@ -133,9 +133,7 @@ def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | N
         "observed_failures": summary[f"observed_failures_{main_h}d"],
     })
     if pin is None:
-        fold_c = cv.per_fold.pivot(index="fold", columns="model", values="c_truncation")
-        choice = choose(choice_input, calibration_share=config.validation.calibration_share, note=note,
-                        se_rule=config.validation.se_rule, fold_c=fold_c)
+        choice = choose(choice_input, calibration_share=config.validation.calibration_share, note=note)
     else:
         choice = pinned(pin, choice_input)
 
@@ -235,7 +233,7 @@ def _model_side_files(fitted: dict, chosen: str, golden: LifeTable, out_dir: Pat
 
 def describe_fit(outcome: FitOutcome) -> list[str]:
     """Lines for the terminal: the candidates table and the choice."""
-    cols = [c for c in ("candidate", "c_mean", "c_se", "se_used", "calibration_ratio", "eligible", "within_1se")
+    cols = [c for c in ("candidate", "c_mean", "c_se", "calibration_ratio", "eligible", "within_1se")
             if c in outcome.choice.candidates.reset_index(names="candidate").columns]
     table = outcome.choice.candidates.reset_index(names="candidate").loc[:, cols]
     lines = ["candidates (unit-grouped cross-validation, truncation-aware C):", format_table(table).rstrip(),

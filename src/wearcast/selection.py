@@ -20,9 +20,7 @@ not eligible. Among eligible candidates whose mean C is within one standard
 error of the best, the simplest is chosen — the one-standard-error rule
 (Breiman, Friedman, Olshen and Stone 1984, *Classification and Regression
 Trees*; Hastie, Tibshirani and Friedman, *The Elements of Statistical
-Learning*, 2nd ed., §7.10). ``[validation] se_rule = "paired"`` measures
-"within one standard error" on each candidate's paired difference from the
-best over the same folds instead of on the best model's own spread.
+Learning*, 2nd ed., §7.10).
 
 Small fleets: with fewer than ``10 × p`` failures (p covariates) only ``cox``
 and ``boosted_d1`` are tried — about ten events per estimated effect is the
@@ -61,26 +59,13 @@ def candidate_names(n_failures: int, n_covariates: int) -> tuple[tuple[str, ...]
     return CANDIDATE_ORDER, None
 
 
-def choose(summary: pd.DataFrame, *, calibration_share: float = 0.25, note: str | None = None,
-           se_rule: str = "model", fold_c: pd.DataFrame | None = None) -> Choice:
+def choose(summary: pd.DataFrame, *, calibration_share: float = 0.25, note: str | None = None) -> Choice:
     """Apply the calibration guard and the one-standard-error rule.
 
     ``summary`` is indexed by candidate name with columns ``c_mean``, ``c_se``
     (cross-validated truncation-aware C and its standard error over folds),
     ``expected_failures`` and ``observed_failures`` (summed over held-out folds).
-
-    ``se_rule``: ``"model"`` (the rule as published) keeps the candidates whose
-    mean C is within the best model's standard error of the best;
-    ``"paired"`` keeps candidate j when ``C_best - C_j`` is within the
-    standard error of that difference over the same folds,
-    ``sd_k(C_best,k - C_j,k) / sqrt(K)`` (``fold_c``: folds × candidates).
-    Fold-to-fold spread that all models share (an easy or a hard fold) then
-    no longer hides a consistent gain.
     """
-    if se_rule not in ("model", "paired"):
-        raise ValueError(f"se_rule must be 'model' or 'paired'; got {se_rule!r}")
-    if se_rule == "paired" and fold_c is None:
-        raise ValueError("se_rule='paired' needs the per-fold C of every candidate (fold_c)")
     table = summary.copy()
     order = {name: i for i, name in enumerate(CANDIDATE_ORDER)}
     table["simplicity_rank"] = [order.get(n, len(order)) for n in table.index]
@@ -100,15 +85,8 @@ def choose(summary: pd.DataFrame, *, calibration_share: float = 0.25, note: str 
         return Choice(fallback, _with_note(reason, note), table.sort_values("simplicity_rank"))
     eligible = table[table["eligible"]]
     best = eligible["c_mean"].idxmax()
-    if se_rule == "model":
-        table["se_used"] = eligible.loc[best, "c_se"]
-    else:
-        diff = fold_c[[best]].to_numpy(float) - fold_c.reindex(columns=table.index).to_numpy(float)
-        k = np.isfinite(diff).sum(axis=0)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            table["se_used"] = np.where(k > 1, np.nanstd(diff, axis=0, ddof=1) / np.sqrt(k), np.nan)
-        table.loc[best, "se_used"] = 0.0
-    table["within_1se"] = table["eligible"] & (table["c_mean"] >= eligible.loc[best, "c_mean"] - table["se_used"])
+    threshold = eligible.loc[best, "c_mean"] - eligible.loc[best, "c_se"]
+    table["within_1se"] = table["eligible"] & (table["c_mean"] >= threshold)
     chosen = table[table["within_1se"]].sort_values("simplicity_rank").index[0]
     if chosen == best:
         reason = (
@@ -116,16 +94,10 @@ def choose(summary: pd.DataFrame, *, calibration_share: float = 0.25, note: str 
             f"({table.loc[chosen, 'c_mean']:.3f} ± {table.loc[chosen, 'c_se']:.3f}) and no simpler model "
             "within one standard error."
         )
-    elif se_rule == "model":
+    else:
         reason = (
             f"chose {chosen} (C {table.loc[chosen, 'c_mean']:.3f}): the simplest model within one standard "
             f"error of the best, {best} (C {table.loc[best, 'c_mean']:.3f} ± {table.loc[best, 'c_se']:.3f})."
-        )
-    else:
-        reason = (
-            f"chose {chosen} (C {table.loc[chosen, 'c_mean']:.3f}): the simplest model whose shortfall from the "
-            f"best, {best} (C {table.loc[best, 'c_mean']:.3f}), is within one standard error of the paired "
-            f"difference over folds ({table.loc[chosen, 'se_used']:.3f})."
         )
     return Choice(chosen, _with_note(reason, note), table.sort_values("simplicity_rank"))
 
