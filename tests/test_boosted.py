@@ -9,6 +9,8 @@ against lifelines and R's published coefficients in test_cox_kernels.py).
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -202,6 +204,26 @@ def test_same_seed_same_predictions_on_one_and_two_threads(stanford):
     other = BoostedSurvivalTrees(_fixed(n_trees=one.n_trees_, subsample=0.7), seed=12).fit(stanford)
     same = BoostedSurvivalTrees(_fixed(n_trees=one.n_trees_, subsample=0.7), seed=11).fit(stanford)
     assert not np.array_equal(other.log_risk(stanford.X), same.log_risk(stanford.X))
+
+
+def test_row_wise_one_thread_equals_column_wise_two_threads():
+    # One thread builds row-wise histograms, several threads column-wise ones; the
+    # sums are the same numbers added in the same order, so the trees must be
+    # identical. Random data with many distinct values (full 255-bin histograms);
+    # a determinism property, not a reference check.
+    rng = np.random.default_rng(3)
+    n = 6000
+    X = rng.normal(size=(n, 4))
+    exit_ = rng.weibull(2.0, n) * 1000 * np.exp(-0.5 * X[:, 0] + 0.3 * X[:, 1] ** 2)
+    entry = np.where(rng.random(n) < 0.3, exit_ * rng.random(n) * 0.9, 0.0)
+    frame = pd.DataFrame(X, columns=["a", "b", "c", "d"]).assign(
+        unit_id=np.arange(n), entry_age=entry, exit_age=exit_, failed=rng.random(n) < 0.7)
+    table = LifeTable.from_frame(frame, ["a", "b", "c", "d"])
+    settings = _fixed(n_trees=30, tree_depth=3, subsample=0.8, predictors_per_split=0.75)
+    one = BoostedSurvivalTrees(replace(settings, threads=1), seed=2).fit(table)
+    two = BoostedSurvivalTrees(replace(settings, threads=2), seed=2).fit(table)
+    assert one._lgb_params(0, ("a",), {})["force_row_wise"] and two._lgb_params(0, ("a",), {})["force_col_wise"]
+    np.testing.assert_array_equal(one.log_risk(table.X), two.log_risk(table.X))
 
 
 def test_from_config_maps_every_knob():

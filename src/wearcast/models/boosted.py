@@ -175,9 +175,12 @@ class BoostedSurvivalTrees(SurvivalModel):
             "lambda_l2": 0.0,
             "boost_from_average": False,
             "deterministic": True,
-            # Column-wise histograms: each feature's histogram is summed by one
-            # thread over all rows, so results do not depend on num_threads.
-            "force_col_wise": True,
+            # With several threads, column-wise histograms: each feature's histogram
+            # is summed by one thread over all rows in row order, so results do not
+            # depend on num_threads. With one thread, row-wise histograms add the same
+            # numbers in the same order (identical trees) and run faster.
+            "force_col_wise": int(s.threads) != 1,
+            "force_row_wise": int(s.threads) == 1,
             "num_threads": int(s.threads),
             "seed": int(lgb_seed),
             "verbosity": -1,
