@@ -160,3 +160,32 @@ def test_window_past_the_export_date_is_refused(scenario):
     config = load_config(scenario.config)  # the scenario's export date is 2026-11-30
     with pytest.raises(ConfigError, match="after the export date"):
         backtest.run_backtest(config, _cox_factories(), dt.date(2026, 10, 1), 90, top_k=5)
+
+
+def test_forecast_interval_from_refits_is_the_ranked_list_interval(scenario):
+    # With refits the backtest checks the fleet forecast's own 90 % interval: the
+    # count law averaged over bootstrap refits fitted on the data as of the origin,
+    # exactly what `wearcast rank` would have printed then.
+    from wearcast._poisson_binomial import pmf_quantile
+    from wearcast.io import load_export
+    from wearcast.resample import INTERVAL, bootstrap_refits
+
+    config = load_config(scenario.config)
+    factories = {"cox": _cox_factories()["cox"]}
+    result = backtest.run_backtest(config, factories, ORIGIN, HORIZON, every_months=6, origins=2, top_k=5,
+                                   seed=4, refits=4, refit_jobs=1)
+    rows = result.per_origin
+    low, high = rows[f"forecast_{HORIZON}d_low"], rows[f"forecast_{HORIZON}d_high"]
+    observed = rows[f"observed_failures_{HORIZON}d"]
+    assert (low <= high).all()
+    assert rows[f"observed_inside_forecast_{HORIZON}d"].tolist() == ((low <= observed) & (observed <= high)).tolist()
+    assert int(result.summary[f"origins_observed_inside_forecast_{HORIZON}d"].iloc[0]) == int(
+        rows[f"observed_inside_forecast_{HORIZON}d"].sum())
+    # recompute the later origin's interval by hand from the same seeds
+    seeds = np.random.default_rng(4).integers(0, 2**31 - 1, size=(2, 1, 2))
+    table = load_export(config, as_of=ORIGIN).table
+    model = factories["cox"](int(seeds[1, 0, 0])).fit(table)
+    refits = bootstrap_refits(table, model, 4, int(seeds[1, 0, 1]), [HORIZON], jobs=1, progress=False)
+    assert list(pmf_quantile(refits.count_pmf[0][0], list(INTERVAL))) == [low.iloc[1], high.iloc[1]]
+    plain = backtest.run_backtest(config, factories, ORIGIN, HORIZON, top_k=5, seed=4)
+    assert f"forecast_{HORIZON}d_low" not in plain.per_origin.columns

@@ -17,6 +17,13 @@ the time to failure within the window; expected failures Σp with the 2.5 % and
 precision of the top-k list (share of the k highest-probability units that
 failed) and its lift over a random list (the overall failure share), over an
 "oldest first" list and over the Cox baseline's list.
+
+With ``refits > 0`` each (origin, model) also gets the fleet forecast's own
+interval, as ``wearcast rank`` reports it: bootstrap refits of the model on
+the data as of ``D`` (:func:`wearcast.resample.bootstrap_refits`), the
+failure-count law averaged over refits (chance and model uncertainty
+together), and its 5 % and 95 % quantiles; the observed count is checked
+against that 90 % interval.
 """
 
 from __future__ import annotations
@@ -80,6 +87,8 @@ def _names(horizon_days: int, top_k: int) -> dict[str, str]:
         "expected": f"expected_failures_{h}d",
         "observed": f"observed_failures_{h}d",
         "inside": f"observed_inside_interval_{h}d",
+        "forecast": f"forecast_{h}d",
+        "inside_forecast": f"observed_inside_forecast_{h}d",
         "share": f"failure_share_{h}d",
         "precision": f"precision_top{k}_{h}d",
         "precision_oldest": f"precision_top{k}_{h}d_oldest",
@@ -170,6 +179,8 @@ def run_backtest(
     origins: int = 1,
     top_k: int = 50,
     seed: int = 0,
+    refits: int = 0,
+    refit_jobs: int = 0,
 ) -> BacktestResult:
     """Run the as-of backtest described in the module docstring.
 
@@ -178,7 +189,9 @@ def run_backtest(
     every (origin, model) fit are drawn up front from
     ``numpy.random.default_rng(seed)``. Raises :class:`ConfigError` when an
     origin plus the horizon passes the export date (``fleet.as_of``, or the
-    export's latest date when that is unset).
+    export's latest date when that is unset). ``refits``: bootstrap refits
+    per (origin, model) for the fleet forecast's 90 % interval (0 = skip);
+    ``refit_jobs``: their worker processes (0 = all cores).
     """
     if not model_factories:
         raise ValueError("run_backtest needs at least one model factory")
@@ -187,7 +200,7 @@ def run_backtest(
         raise ConfigError(f"horizon_days and top_k must be at least 1; got {horizon_days} and {top_k}.")
     dates = origin_dates(origin, every_months, origins)
     names = list(model_factories)
-    seeds = np.random.default_rng(seed).integers(0, 2**31 - 1, size=(len(dates), len(names)))
+    seeds = np.random.default_rng(seed).integers(0, 2**31 - 1, size=(len(dates), len(names), 2))
     export_end = config.fleet.as_of
     if export_end is None:
         # only the export's last date is used from this full read, never its records
@@ -209,15 +222,18 @@ def run_backtest(
         X = open_rows.X
         age = open_rows.exit
         for j, name in enumerate(names):
-            model = model_factories[name](int(seeds[i, j]))
+            model = model_factories[name](int(seeds[i, j, 0]))
             try:
                 model.fit(fit_table)
+                forecast = {} if refits <= 0 else _forecast_interval(
+                    fit_table, model, refits, int(seeds[i, j, 1]), horizon_days, refit_jobs,
+                    int(outcome["failed"].sum()))
             except ModelError as exc:
                 raise ModelError(f"backtest origin {day}, model {name}: {exc}") from exc
             p = np.asarray(model.fail_probability(X, age, horizon_days), float)
             rows.append({"origin": day, "model": name, "fit_rows": fit_table.n_rows,
                          "fit_failures": fit_table.n_failures,
-                         **score_origin(p, outcome, horizon_days, top_k)})
+                         **score_origin(p, outcome, horizon_days, top_k), **forecast})
             unit_frames.append(outcome.assign(origin=day, model=name, probability=p))
     per_origin = pd.DataFrame(rows)
     _add_cox_lift(per_origin, horizon_days, top_k)
@@ -227,6 +243,18 @@ def run_backtest(
     notes = [f"Outcomes: failures recorded within {horizon_days} days after each origin; models fitted only on "
              "records dated on or before the origin."]
     return BacktestResult(horizon_days, top_k, dates, per_origin, summary, units, seed, notes)
+
+
+def _forecast_interval(table: LifeTable, model: SurvivalModel, refits: int, seed: int, horizon_days: int,
+                       jobs: int, observed: int) -> dict:
+    """The fleet forecast's 5-95 % interval from bootstrap refits, and whether ``observed`` is inside."""
+    from wearcast.resample import INTERVAL, bootstrap_refits
+
+    names = _names(horizon_days, 1)
+    summary = bootstrap_refits(table, model, refits, seed, [horizon_days], jobs=jobs, progress=False)
+    low, high = pmf_quantile(summary.count_pmf[0][0], list(INTERVAL))
+    return {f"{names['forecast']}_low": int(low), f"{names['forecast']}_high": int(high),
+            names["inside_forecast"]: bool(int(low) <= observed <= int(high))}
 
 
 def _check_not_after(table: LifeTable, day: dt.date) -> None:
@@ -269,6 +297,8 @@ def _summarise(per_origin: pd.DataFrame, models: list[str], horizon_days: int, t
             names["expected"]: float(part[names["expected"]].sum()),
             names["observed"]: int(failures),
             f"origins_{names['inside']}": int(part[names["inside"]].sum()),
+            **({f"origins_{names['inside_forecast']}": int(part[names["inside_forecast"]].sum())}
+               if names["inside_forecast"] in part else {}),
             names["share"]: failures / units if units else float("nan"),
             names["precision"]: precision,
             names["precision_oldest"]: hits_oldest / k.sum() if k.sum() else float("nan"),

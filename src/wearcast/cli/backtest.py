@@ -31,10 +31,13 @@ from wearcast.cli._common import (command_help, config_argument, library_call, l
               help="Number of origins, stepping back from --as-of.")
 @click.option("--top-k", "top_k", type=click.IntRange(min=1), default=None,
               help="Length of the list scored (default: [ranking] top_k).")
+@click.option("--refits", type=click.IntRange(min=0), default=0, show_default=True,
+              help="Bootstrap refits per origin and model, to check the fleet forecast's 90 % interval "
+                   "(0 = skip; 200 as in [ranking] refits takes about as long as that many fits).")
 @out_option
 @library_call
 def command(config: Path, as_of: dt.datetime, horizon: str, every: str | None, origins: int,
-            top_k: int | None, out_dir: Path | None) -> None:
+            top_k: int | None, refits: int, out_dir: Path | None) -> None:
     from wearcast.backtest import run_backtest, write_backtest
     from wearcast.fitting import config_model_names, make_model
     from wearcast.validation import format_table
@@ -45,7 +48,8 @@ def command(config: Path, as_of: dt.datetime, horizon: str, every: str | None, o
     factories = {name: (lambda seed, n=name: make_model(n, cfg, seed)) for name in names}
     result = run_backtest(cfg, factories, as_of.date(), parse_days(horizon),
                           every_months=parse_months(every) if every else None, origins=origins,
-                          top_k=top_k or cfg.ranking.top_k, seed=cfg.model.seed)
+                          top_k=top_k or cfg.ranking.top_k, seed=cfg.model.seed, refits=refits,
+                          refit_jobs=cfg.ranking.jobs)
     write_backtest(result, out_dir)
     from wearcast.report import build_report, report_inputs_from_run_folder
 
