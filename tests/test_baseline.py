@@ -87,15 +87,19 @@ def naive_baseline(entry, exit, event, eta, weights, ties):
     return out
 
 
-@pytest.mark.parametrize("ties", ["breslow", "efron"])
-def test_tied_weighted_delayed_entry_matches_naive_loop(ties):
-    rng = np.random.default_rng(11)
-    n = 60
+def tied_rows(seed: int, n: int, weight_choices):
+    """Small rows with many tied ages, delayed entry, failures and case weights."""
+    rng = np.random.default_rng(seed)
     entry = rng.integers(0, 4, n).astype(float)
     exit = entry + rng.integers(1, 6, n)
     event = rng.random(n) < 0.5
-    eta = rng.normal(size=n) + 300.0  # large scores must not overflow
-    weights = rng.choice([0.5, 1.0, 2.0], n)
+    return entry, exit, event, rng.normal(size=n), rng.choice(weight_choices, n)
+
+
+@pytest.mark.parametrize("ties", ["breslow", "efron"])
+def test_tied_weighted_delayed_entry_matches_naive_loop(ties):
+    entry, exit, event, eta, weights = tied_rows(11, 60, [0.5, 1.0, 2.0])
+    eta = eta + 300.0  # large scores must not overflow
     base = BaselineHazard.estimate(entry, exit, event, eta, weights=weights, ties=ties)
     ref = naive_baseline(entry, exit, event, eta - 300.0, weights, ties)
     ages = np.array(sorted(ref))
@@ -113,13 +117,7 @@ def test_from_risk_sets_equals_estimate(ties):
     # checked against the naive loop above).
     from wearcast.models._cox_kernels import prepare_risk_sets
 
-    rng = np.random.default_rng(12)
-    n = 80
-    entry = rng.integers(0, 4, n).astype(float)
-    exit = entry + rng.integers(1, 6, n)
-    event = rng.random(n) < 0.5
-    eta = rng.normal(size=n)
-    weights = rng.choice([1.0, 2.0, 3.0], n)
+    entry, exit, event, eta, weights = tied_rows(12, 80, [1.0, 2.0, 3.0])
     rs = prepare_risk_sets(entry, exit, event, weights=weights, ties=ties)
     quick = BaselineHazard.from_risk_sets(rs, eta, interpolation="linear")
     slow = BaselineHazard.estimate(entry, exit, event, eta, weights=weights, ties=ties, interpolation="linear")
