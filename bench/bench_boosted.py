@@ -327,7 +327,7 @@ def report(rows, extra, a) -> str:
     lines = [
         "## Boosted survival trees (`bench/bench_boosted.py`)",
         "",
-        f"Fixed B = {a.trees} trees of depth {a.depth}, λ = {a.lr}, row subsample 0.8, {a.threads} thread(s) "
+        f"Fixed B = {a.trees} trees of depth {a.depth}, λ = {a.lr}, subsample 0.8 (wearcast: of units, whole histories; XGBoost and scikit-survival: of rows), {a.threads} thread(s) "
         f"for every booster. Backtest: {extra['n_backtest']:,} units in service one year before the export of a "
         f"separate {a.test_units:,}-unit test fleet; {extra['backtest_failures']} failed within the year; "
         f"observed (Kaplan–Meier) one-year failure probability {extra['observed']:.4f}. Oracle (true hazard, "
