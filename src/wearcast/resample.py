@@ -17,10 +17,14 @@ Checkpoints: each finished refit is written at once as ``refit_NNNN.npz``
 (plain numeric arrays, no pickles, atomic) carrying a fingerprint of the table
 contents, the model settings, the seed, the number of refits, the horizons and
 the ranking horizon. A rerun with the same fingerprint only computes missing
-refits; a file with another fingerprint is recomputed and overwritten.
+refits; a file with another fingerprint is recomputed and overwritten. Each
+file also holds the refit's failure-count pmf per group and horizon, counted
+by the worker, with a key of the groups' units; the summary adds those up and
+counts afresh only when the groups differ.
 
 Memory: per refit the parent keeps nothing but the file on disk
-(``n_units * (4 * n_horizons + 8)`` bytes). The summary reads the files back in
+(``n_units * (4 * n_horizons + 8)`` bytes plus the pmfs, 8 bytes per count
+up to a group's largest likely count). The summary reads the files back in
 unit chunks holding at most :data:`CHUNK_BYTES` of refit values at a time, plus
 the fleet-count mixtures (``8 * n_horizons * (n_groups + n_units * (1 + len(group_by)))``
 bytes) and the per-refit group totals (``8 * n_refits * n_groups * n_horizons``
