@@ -94,7 +94,9 @@ def backtest_summary() -> pd.DataFrame:
     return pd.DataFrame({"model": ["boosted", "cox"], "c_harrell_90d": [0.7, 0.66], "expected_failures_90d": [30.1, 29.0],
                          "observed_failures_90d": [28, 28], "precision_top50_90d": [0.22, 0.18],
                          "precision_top50_90d_oldest": [0.1, 0.1], "lift_top50_90d_vs_oldest": [2.2, 1.8],
-                         "lift_top50_90d_vs_random": [3.1, 2.5], "auc_90d": [0.7, 0.6]})
+                         "lift_top50_90d_vs_random": [3.1, 2.5], "auc_90d": [0.7, 0.6], "origins": [6, 6],
+                         "origins_observed_inside_interval_90d": [6, 5],
+                         "origins_observed_inside_forecast_90d": [5, 4]})
 
 
 def life_table(n: int = 300, seed: int = 5) -> LifeTable:
@@ -377,6 +379,9 @@ def test_evidence_tables_show_the_validation_files(built):
     assert shown == comparison_file["expected_failures_90d"].tolist()
     backtest = page.split('class="backtest"')[1].split("</table>")[0]
     assert "auc_90d" not in backtest and 'data-field="precision_top50_90d_oldest"' in backtest
+    # the interval check is said in words under the table, from the run's own counts
+    assert ("Observed failures within 90 days fell inside the fleet forecast&#x27;s 90 % interval (chance and "
+            "model uncertainty): boosted at 5 of 6 past dates, cox at 4 of 6 past dates.") in page
 
 
 def test_sections_come_in_reading_order(built):

@@ -196,6 +196,23 @@ def backtest_columns(backtest: pd.DataFrame) -> list[str]:
     return [c for c in backtest.columns if keep.match(str(c))]
 
 
+def interval_hits(backtest: pd.DataFrame) -> str:
+    """One sentence per model: at how many past dates the observed failures fell inside the
+    fleet forecast's 90 % interval (backtests run with refits) or, failing that, inside the
+    95 % chance interval; empty when the summary has neither count."""
+    if backtest is None or backtest.empty or "model" not in backtest.columns or "origins" not in backtest.columns:
+        return ""
+    for kind, what in (("forecast", "the fleet forecast's 90 % interval (chance and model uncertainty)"),
+                       ("interval", "the 95 % chance interval of the expected count")):
+        cols = [c for c in backtest.columns if re.fullmatch(rf"origins_observed_inside_{kind}_(\d+)d", str(c))]
+        if cols:
+            days = re.fullmatch(r".*_(\d+)d", cols[0]).group(1)
+            counts = ", ".join(f"{row['model']} at {int(row[cols[0]])} of {int(row['origins'])} past dates"
+                               for _, row in backtest.iterrows())
+            return f"Observed failures within {days} days fell inside {what}: {counts}."
+    return ""
+
+
 def calibration_counts(comparison: pd.DataFrame) -> pd.DataFrame | None:
     """Expected against observed failures per model and horizon from the comparison table."""
     if comparison is None or comparison.empty or "model" not in comparison.columns:

@@ -238,6 +238,9 @@ def evidence(inputs) -> Section:
         cols = [h.Column(c.replace("_", " "), c, h.fmt_number if pd.api.types.is_float_dtype(bt[c]) else h.fmt_text,
                          numeric=pd.api.types.is_numeric_dtype(bt[c])) for c in bt.columns]
         parts.append(h.table(bt, cols, cls="backtest", caption="Backtest results as written by the run."))
+        held = norm.interval_hits(inputs.backtest_summary)
+        if held:
+            parts.append(h.paragraph(held))
     curves = []
     oob = norm.tree_curve(inputs.oob_curve, "oob_concordance")
     if oob is not None:
