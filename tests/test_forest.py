@@ -89,6 +89,31 @@ def test_weights_act_as_copies_in_leaf_hazards():
     np.testing.assert_allclose(weighted, copied, rtol=1e-6)
 
 
+@pytest.mark.parametrize("block_cells", [None, 64])
+def test_compiled_leaf_hazards_equal_the_numpy_ones(block_cells, monkeypatch):
+    # Many leaves, tied ages, delayed entry, zero and repeated weights, grid ages
+    # before the first failure; small blocks exercise the blocked path.
+    from wearcast.models import _forest_leaves as fl
+
+    if fl._leaf_hazards_compiled is None:
+        pytest.skip("numba is not installed")
+    if block_cells is not None:
+        monkeypatch.setattr(fl, "MAX_BLOCK_CELLS", block_cells)
+    rng = np.random.default_rng(8)
+    n = 5000
+    entry = rng.integers(0, 300, n).astype(float)
+    exit = entry + rng.integers(1, 400, n)
+    event = rng.random(n) < 0.4
+    grid = np.concatenate([[0.5], np.quantile(exit[event], np.linspace(0, 1, 60))])
+    index = fl.risk_index(entry, exit, event, grid)
+    leaf = rng.integers(0, 37, n)
+    weights = rng.choice([0.0, 1.0, 2.0, 3.0], n)
+    compiled = fl.leaf_hazards_indexed(index, leaf, 37, weights)
+    reference = fl.leaf_hazards_numpy(index, leaf, 37, weights)
+    np.testing.assert_allclose(compiled, reference, rtol=1e-6, atol=0)
+    assert (compiled[:, 0] == 0).all()
+
+
 def test_grid_is_bounded_and_holds_all_failure_ages_when_few():
     rng = np.random.default_rng(1)
     exit = rng.uniform(1, 5000, size=20_000)
