@@ -35,6 +35,17 @@ def draw_unit_counts(codes: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     return np.bincount(rng.integers(0, n_units, size=n_units), minlength=n_units)
 
 
+def draw_unit_weights(codes: np.ndarray, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
+    """The same bootstrap as :func:`draw_unit_counts`, as case weights on rows:
+    ``(rows, weights)``, the positions of the rows whose unit was drawn (in
+    order) and each one's weight, the number of times its unit was drawn
+    (float)."""
+    codes = np.asarray(codes)
+    row_counts = draw_unit_counts(codes, rng)[codes] if len(codes) else np.zeros(0, np.int64)
+    rows = np.flatnonzero(row_counts > 0)
+    return rows, row_counts[rows].astype(float)
+
+
 def check_life_table(
     frame: pd.DataFrame,
     covariates: Sequence[str] = (),
@@ -251,16 +262,6 @@ class LifeTable:
         keep = self.frame["unit_id"].isin(set(map(str, unit_ids))).to_numpy()
         return self.take_rows(np.flatnonzero(keep))
 
-    def bootstrap_counts(self, rng: np.random.Generator) -> np.ndarray:
-        """How many times each unit is drawn in one bootstrap of whole units.
-
-        Draws ``n_units`` unit codes (:meth:`unit_codes`) with replacement from
-        ``rng``; returns the counts, shape (n_units,) int64, summing to n_units.
-        :meth:`bootstrap_units` and :meth:`bootstrap_weights` both start from
-        this draw, so one seed gives the same resample either way.
-        """
-        return draw_unit_counts(self.unit_codes(), rng)
-
     def bootstrap_units(self, rng: np.random.Generator) -> "LifeTable":
         """Resample whole unit histories with replacement.
 
@@ -294,11 +295,8 @@ class LifeTable:
         was drawn. Weighted risk sets give the same Breslow partial likelihood
         as the duplicated table with about 63 % of its rows.
         """
-        codes = self.unit_codes()
-        counts = draw_unit_counts(codes, rng)
-        row_counts = counts[codes] if len(codes) else np.zeros(0, np.int64)
-        rows = np.flatnonzero(row_counts > 0)
-        return self.take_rows(rows), row_counts[rows].astype(float)
+        rows, weights = draw_unit_weights(self.unit_codes(), rng)
+        return self.take_rows(rows), weights
 
     def in_service(self) -> "LifeTable":
         """The open interval of every unit still running at the export date."""

@@ -43,7 +43,7 @@ import pandas as pd
 from wearcast import _atomic
 from wearcast.config import BoostedSection
 from wearcast.exceptions import BundleError, ModelError
-from wearcast.lifetable import draw_unit_counts
+from wearcast.lifetable import draw_unit_weights
 from wearcast.models._boost_objective import (
     category_levels,
     cox_objective,
@@ -203,7 +203,7 @@ class BoostedSurvivalTrees(SurvivalModel):
 
     def fit_resampled(self, table, rng: np.random.Generator, cache: dict | None = None) -> "BoostedSurvivalTrees":
         """Fit on one bootstrap of whole units: the units drawn
-        (:func:`wearcast.lifetable.draw_unit_counts`, the draw of
+        (:func:`wearcast.lifetable.draw_unit_weights`, the draw of
         :meth:`LifeTable.bootstrap_units`) enter once, with case weights =
         times drawn.
 
@@ -229,9 +229,8 @@ class BoostedSurvivalTrees(SurvivalModel):
                                params=params, free_raw_data=True).construct()
             cache[key] = (encoded, bins)
         encoded, bins = cache[key]
-        counts = draw_unit_counts(encoded.codes, rng)[encoded.codes]
-        rows = np.flatnonzero(counts > 0)
-        return self._fit(encoded.take(rows), counts[rows].astype(float), bins)
+        rows, weights = draw_unit_weights(encoded.codes, rng)
+        return self._fit(encoded.take(rows), weights, bins)
 
     def _fit(self, data: "_Encoded", weights: np.ndarray | None, bins=None) -> "BoostedSurvivalTrees":
         s = self.settings
