@@ -22,8 +22,7 @@ from typing import Callable, Mapping, Sequence
 import numpy as np
 import pandas as pd
 
-from wearcast.models import _cox_fused
-from wearcast.models._cox_kernels import RiskSets, _checked_eta, cox_gradient_hessian, cox_loss
+from wearcast.models._cox_kernels import RiskSets, cox_gradient_hessian, cox_loss
 
 #: Floor on a row's Hessian handed to LightGBM. Rows that are never at risk at a
 #: failure age have an exact Hessian of zero; a tiny floor keeps leaf values
@@ -43,8 +42,8 @@ def cox_objective(
     ``risk_sets`` comes from :func:`prepare_risk_sets` on that training set's
     rows, in the same order as the LightGBM ``Dataset``. The returned callable
     takes the current raw scores (log relative risk ``eta``, shape (n,)) and
-    returns ``(grad, hess)``, both shape (n,): float32 (LightGBM's gradient
-    type) when numba is installed, float64 otherwise.
+    returns ``(grad, hess)``, both shape (n,), float32 (LightGBM's gradient
+    type).
 
     Stochastic boosting by units: with ``subsample < 1`` each call (one per
     tree) keeps every unit (``unit_codes`` (n,), whole histories) with
@@ -63,12 +62,8 @@ def cox_objective(
         rng = np.random.default_rng(seed)
 
     def objective(raw_scores: np.ndarray, _dataset: object) -> tuple[np.ndarray, np.ndarray]:
-        eta = np.asarray(raw_scores, dtype=float)
-        if _cox_fused.available():
-            # float32, LightGBM's gradient type: it takes the arrays without a copy
-            grad, hess = _cox_fused.gradient_hessian(risk_sets, _checked_eta(risk_sets, eta), np.float32)
-        else:
-            grad, hess = cox_gradient_hessian(risk_sets, eta)
+        # float32, LightGBM's gradient type: it takes the arrays without a copy
+        grad, hess = cox_gradient_hessian(risk_sets, np.asarray(raw_scores, dtype=float), np.float32)
         hess = np.maximum(hess, HESSIAN_FLOOR, out=hess)
         if subsample < 1:
             kept = (rng.random(n_units) < subsample)[codes]

@@ -298,7 +298,7 @@ def cox_loss(rs: RiskSets, eta: np.ndarray) -> float:
     return _pieces(rs, eta, derivatives=False)[0]
 
 
-def cox_gradient_hessian(rs: RiskSets, eta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def cox_gradient_hessian(rs: RiskSets, eta: np.ndarray, dtype=np.float64) -> tuple[np.ndarray, np.ndarray]:
     """``(d loss / d eta, diag of d2 loss / d eta2)``, both shape (n,); the diagonal is >= 0.
 
     Breslow, for row ``j`` with ``r_j = w_j exp(eta_j)``::
@@ -312,11 +312,14 @@ def cox_gradient_hessian(rs: RiskSets, eta: np.ndarray) -> tuple[np.ndarray, np.
 
     Runs the compiled single-pass version (:mod:`._cox_fused`) when numba is
     installed, the NumPy version otherwise; the two agree to rounding.
+    ``dtype`` of the outputs: float32 rounds the float64 values once (what
+    LightGBM takes without a copy).
     """
     if _cox_fused.available():
-        return _cox_fused.gradient_hessian(rs, _checked_eta(rs, eta))
+        return _cox_fused.gradient_hessian(rs, _checked_eta(rs, eta), dtype)
     _, out = _pieces(rs, eta, derivatives=True)
-    return _gradient_hessian(rs, out)
+    grad, hess = _gradient_hessian(rs, out)
+    return grad.astype(dtype, copy=False), hess.astype(dtype, copy=False)
 
 
 def cox_loss_gradient_hessian(rs: RiskSets, eta: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
