@@ -283,7 +283,8 @@ def _fit_and_predict(template: SurvivalModel, seed: int, train_table: LifeTable,
     model = template.unfitted_copy(seed)
     model.fit(train_table)
     risk = np.asarray(model.risk_score(X_test), float)
-    prob = {h: np.asarray(model.fail_probability(X_test, entry_test, h), float) for h in horizons}
+    p = np.asarray(model.fail_probabilities(X_test, entry_test, horizons), float)
+    prob = {h: p[:, j] for j, h in enumerate(horizons)}
     return risk, prob, np.asarray(model.survival(X_test, brier_times), float)
 
 
