@@ -6,7 +6,7 @@ from pathlib import Path
 
 import click
 
-from wearcast.cli._common import command_help, library_call
+from wearcast.cli._common import command_help, config_argument, library_call
 
 _LABELS = (
     ("units", "units"),
@@ -50,7 +50,7 @@ def format_summary(summary: dict) -> list[str]:
         "wearcast check fleet.toml --out checked/",
     ),
 )
-@click.argument("config", type=click.Path(dir_okay=False, path_type=Path))
+@config_argument
 @click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path), default=None,
               help="Folder for quarantine.csv and life_table.csv (default: the config's output.folder).")
 @library_call
