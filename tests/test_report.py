@@ -23,6 +23,7 @@ import pytest
 from wearcast import CAUTION, LifeTable, _atomic
 from wearcast.report import (FIGURES_DIR, ReportInputs, build_report, render_report,
                              report_inputs_from_run_folder)
+from wearcast import _product_limit
 from wearcast.report import _curves
 
 
@@ -220,7 +221,7 @@ def test_product_limit_with_late_entry_matches_lifelines_on_macs():
     from lifelines.datasets import load_multicenter_aids_cohort_study
 
     df = load_multicenter_aids_cohort_study()
-    ours = _curves.product_limit_survival(df["W"], df["T"], df["D"].astype(bool))
+    ours = _product_limit.product_limit_survival(df["W"], df["T"], df["D"].astype(bool))
     km = KaplanMeierFitter().fit(df["T"], df["D"], entry=df["W"])
     np.testing.assert_allclose(ours["survival"], km.survival_function_at_times(ours["age"]).to_numpy(),
                                rtol=0, atol=1e-12)
@@ -279,7 +280,7 @@ def test_at_risk_counts_follow_the_delayed_entry_rule():
     # A row is at risk at t when entry < t <= exit (wearcast.lifetable); counted by hand.
     entry = np.array([0.0, 5.0, 5.0])
     exit_ = np.array([10.0, 8.0, 20.0])
-    assert _curves.at_risk_counts(entry, exit_, np.array([5.0, 5.5, 8.0, 8.5, 10.0, 20.0, 20.5])).tolist() == \
+    assert _product_limit.at_risk_counts(entry, exit_, np.array([5.0, 5.5, 8.0, 8.5, 10.0, 20.0, 20.5])).tolist() == \
         [1, 3, 3, 2, 2, 1, 0]
 
 
@@ -447,7 +448,7 @@ def test_report_from_the_scenario_fleet(tmp_path):
           "rows_quarantined": result.rows_quarantined, "quarantined_by_reason": result.by_reason()}
     ages = np.array([3.0, 6.0, 9.0]) * 365.25
     truth = scenario.true_population_survival(ages, n_lives=20000)
-    km = _curves.product_limit_survival(table.entry, table.exit, table.event)
+    km = _product_limit.product_limit_survival(table.entry, table.exit, table.event)
     at = np.searchsorted(km["age"], ages, side="right") - 1
     # the 95 % band of the delayed-entry curve covers the true survival (Monte Carlo error ~0.001)
     assert np.all(km["low"][at] - 0.002 <= truth) and np.all(truth <= km["high"][at] + 0.002), (km["survival"][at], truth)
@@ -465,6 +466,13 @@ def test_report_from_the_scenario_fleet(tmp_path):
     assert parsed.sections == ["fleet", "data-quality", "cautions"]
     # the scenario's baseline hazard is Weibull with shape 2 (wearcast.scenario docstring): rising
     assert "looks rising with age" in " ".join(parsed.text)
+    # life statistics: computed from the life table when no life_statistics.csv is given, per site
+    from wearcast.lifestats import life_statistics
+
+    stats = life_statistics(table, ["site"])
+    cells = [n for n in parsed.numbers if n["data-field"] == "b10_days"]
+    assert [float(c["data-value"]) for c in cells] == pytest.approx(stats["b10_days"].tolist())
+    assert len([n for n in parsed.numbers if n["data-field"] == "mtbf_days"]) == len(stats) == 1 + table.frame["site"].nunique()
 
 
 def test_no_unfilled_template_fields_in_the_page(built):

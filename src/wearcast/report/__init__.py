@@ -55,6 +55,9 @@ class ReportInputs:
     (``rows_read``, ``rows_kept``, ``rows_quarantined``,
     ``quarantined_by_reason``). ``monthly_changes``: name -> list of unit ids
     or a frame. ``drift``: ``covariate``, ``psi``, ``level``.
+    ``life_statistics``: MTBF and B-lives per group (``life_statistics.csv``,
+    :func:`wearcast.lifestats.life_statistics`); computed from ``life_table``
+    when not given.
     """
 
     title: str = "Fleet failure-risk report"
@@ -77,6 +80,7 @@ class ReportInputs:
     data_quality: dict | None = None
     monthly_changes: dict | None = None
     drift: pd.DataFrame | None = None
+    life_statistics: pd.DataFrame | None = None
     top_k: int = 20
 
     def group_columns(self, ranked: pd.DataFrame) -> list[str]:
@@ -147,7 +151,7 @@ def report_inputs_from_run_folder(folder: str | Path, **overrides: Any) -> Repor
     ``comparison.csv``, ``metrics.json``, ``calibration.csv``,
     ``backtest_summary.csv``, ``oob_curve.csv``, ``cv_curve.csv``,
     ``importance.csv``, ``contributions.csv``, ``predicted_survival.csv``,
-    ``drift.csv``, ``monthly_changes.json``, ``check_summary.json`` and
+    ``drift.csv``, ``life_statistics.csv``, ``monthly_changes.json``, ``check_summary.json`` and
     ``life_table.csv`` (searched in the folder and its direct subfolders).
     ``overrides`` replace any field (for example ``life_table=`` or ``top_k=``).
     """
@@ -170,6 +174,7 @@ def report_inputs_from_run_folder(folder: str | Path, **overrides: Any) -> Repor
         "unit_contributions": _read_csv(folder, "contributions.csv", dtype={"unit_id": str}),
         "predicted_survival": _read_csv(folder, "predicted_survival.csv"),
         "drift": _read_csv(folder, "drift.csv"),
+        "life_statistics": _read_csv(folder, "life_statistics.csv", keep_default_na=False, na_values=[""]),
         "monthly_changes": _read_json(folder, "monthly_changes.json"),
         "data_quality": _read_json(folder, "check_summary.json"),
         "group_by": summary.get("group_by"),

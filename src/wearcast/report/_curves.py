@@ -1,4 +1,5 @@
-"""Fleet curves for the report: product-limit survival and smoothed hazard rate.
+"""Fleet curves for the report: smoothed hazard rate (product-limit survival comes from
+:mod:`wearcast._product_limit`).
 
 Pure functions on arrays of life-table rows. Ages are days. A row is at risk
 at age ``t`` when ``entry < t <= exit`` (delayed entry), as everywhere in
@@ -10,54 +11,10 @@ from __future__ import annotations
 
 import numpy as np
 
+from wearcast._product_limit import at_risk_counts
 from wearcast.models._hazard import breslow_cumulative_hazard
 
 _Z95 = 1.959963984540054
-
-
-def at_risk_counts(entry: np.ndarray, exit: np.ndarray, ages: np.ndarray) -> np.ndarray:
-    """Number of rows with ``entry < t <= exit`` at each ``t`` in ``ages``, shape (m,)."""
-    entry_sorted = np.sort(np.asarray(entry, float))
-    exit_sorted = np.sort(np.asarray(exit, float))
-    ages = np.asarray(ages, float)
-    entered = np.searchsorted(entry_sorted, ages, side="left")  # entry < t
-    left = np.searchsorted(exit_sorted, ages, side="left")  # exit < t
-    return (entered - left).astype(np.int64)
-
-
-def product_limit_survival(entry, exit, event) -> dict[str, np.ndarray]:
-    """Kaplan–Meier survival with delayed entry, at each distinct failure age.
-
-    Returns a dict of arrays of shape (k,): ``age`` (days, increasing),
-    ``survival``, ``low``/``high`` (pointwise 95 % band, exponential Greenwood
-    on log(-log S), the form lifelines reports), ``at_risk``, ``failures``.
-    With delayed entry the curve is conditional on surviving to the earliest
-    entry age in the data.
-    """
-    entry = np.asarray(entry, float)
-    exit = np.asarray(exit, float)
-    event = np.asarray(event, bool)
-    ages, cumhaz = breslow_cumulative_hazard(entry, exit, event)
-    if len(ages) == 0:
-        empty = np.zeros(0)
-        return {"age": empty, "survival": empty, "low": empty, "high": empty,
-                "at_risk": empty.astype(np.int64), "failures": empty.astype(np.int64)}
-    increments = np.diff(np.concatenate([[0.0], cumhaz]))  # d / n at each age
-    survival = np.cumprod(np.clip(1.0 - increments, 0.0, 1.0))
-    at_risk = at_risk_counts(entry, exit, ages)
-    failures = np.bincount(np.searchsorted(ages, exit[event]), minlength=len(ages))
-    with np.errstate(divide="ignore", invalid="ignore"):
-        greenwood = np.cumsum(np.where(at_risk > failures,
-                                       failures / (at_risk * (at_risk - failures)), 0.0))
-        log_s = np.log(survival)
-        spread = _Z95 * np.sqrt(greenwood) / np.abs(log_s)
-        low = np.where(survival > 0, survival ** np.exp(spread), 0.0)
-        high = np.where(survival > 0, survival ** np.exp(-spread), 0.0)
-    # where S == 1 there is no spread to show
-    low = np.where(np.isfinite(low), low, survival)
-    high = np.where(np.isfinite(high), high, survival)
-    return {"age": ages, "survival": survival, "low": low, "high": high,
-            "at_risk": at_risk, "failures": failures}
 
 
 def epanechnikov(u: np.ndarray) -> np.ndarray:

@@ -262,7 +262,7 @@ def survival_figure(observed: Sequence[tuple[str, dict]], predicted: pd.DataFram
     """Step curves of observed survival (Kaplan–Meier with delayed entry).
 
     ``observed``: ``(label, curve)`` pairs, curve as from
-    :func:`wearcast.report._curves.product_limit_survival`; the first is the
+    :func:`wearcast._product_limit.product_limit_survival`; the first is the
     fleet and gets a 95 % band. ``predicted``: optional ``age_days``, ``survival``.
     """
     fig, axes = _figure(6.4, 3.8)

@@ -1,0 +1,159 @@
+"""Life statistics per fleet group: MTBF and B-lives, from the life table alone.
+
+Model-free numbers a reliability engineer quotes beside any model, computed
+for the whole fleet and for each level of the ``[fleet] group_by`` columns:
+
+* **MTBF** (days): total time at risk divided by the number of failures, the
+  constant-failure-rate estimate; with ``renewal = "replace"`` it is the mean
+  time to failure of a life, with ``"repair"`` the mean time between repairs.
+  Two-sided bounds at ``level`` for a period that ended at a fixed date, not
+  at a failure (time-terminated): lower ``2T / chi2(1 - a/2; 2r + 2)``, upper
+  ``2T / chi2(a/2; 2r)``, ``a = 1 - level``. These are ``T`` divided by
+  Garwood's exact bounds for the Poisson failure count (Garwood 1936,
+  *Biometrika* 28:437–442). With no failures there is no estimate and no
+  upper bound, only the lower one ("at least this long").
+* **B-lives** (days): the age by which ``p`` % of units have failed, read off
+  the delayed-entry product-limit curve as the first age where
+  ``S(t) <= 1 - p/100`` (lifelines' ``qth_survival_time`` convention), with
+  bounds where the pointwise log(-log) band at ``level`` crosses the same
+  height (lifelines: ``qth_survival_times`` on ``confidence_interval_``).
+  Each life counts up to its first failure, so with ``renewal = "repair"``
+  it is the age at first failure. An empty cell means the curve has not
+  fallen that far within the records. With delayed entry the curve is
+  conditional on surviving to the youngest entry age
+  (``observed_from_age_days``), usually 0 when some units were installed
+  after records began.
+
+Both assume the records are representative of the fleet's future duty; they
+describe the population, not any one unit (the ranked list does that).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Sequence
+
+import numpy as np
+import pandas as pd
+from scipy.stats import chi2
+
+from wearcast import _atomic
+from wearcast._product_limit import age_at_survival, product_limit_survival
+from wearcast.exceptions import ConfigError
+from wearcast.lifetable import LifeTable
+
+LIFE_STATISTICS_FILE = "life_statistics.csv"
+FLEET = ("fleet", "all")
+DEFAULT_B_LIVES = (10, 50)
+DEFAULT_LEVEL = 0.90
+
+
+def mtbf_bounds(time_at_risk: float, failures: int, level: float = DEFAULT_LEVEL) -> tuple[float, float, float]:
+    """``(estimate, low, high)`` MTBF for ``failures`` in ``time_at_risk`` (time-terminated).
+
+    No failures: ``(nan, low, nan)``. No time at risk: all NaN.
+    """
+    if not 0.0 < level < 1.0:
+        raise ValueError(f"level must be between 0 and 1, got {level!r}")
+    if not time_at_risk > 0:
+        return float("nan"), float("nan"), float("nan")
+    alpha = 1.0 - level
+    low = 2.0 * time_at_risk / chi2.ppf(1.0 - alpha / 2.0, 2 * failures + 2)
+    if failures == 0:
+        return float("nan"), float(low), float("nan")
+    high = 2.0 * time_at_risk / chi2.ppf(alpha / 2.0, 2 * failures)
+    return time_at_risk / failures, float(low), float(high)
+
+
+def b_life(entry, exit, event, percent: float, level: float = DEFAULT_LEVEL) -> tuple[float, float, float]:
+    """``(estimate, low, high)`` age in days by which ``percent`` % have failed (NaN: not reached)."""
+    if not 0.0 < percent < 100.0:
+        raise ValueError(f"a B-life percentage must be between 0 and 100, got {percent!r}")
+    curve = product_limit_survival(entry, exit, event, level=level)
+    q = 1.0 - percent / 100.0
+    return (age_at_survival(curve["age"], curve["survival"], q),
+            age_at_survival(curve["age"], curve["low"], q),
+            age_at_survival(curve["age"], curve["high"], q))
+
+
+def first_failure_rows(frame: pd.DataFrame) -> np.ndarray:
+    """Positions of the rows of each life up to and including its first failure."""
+    order = np.lexsort((frame["exit_age"].to_numpy(float), frame["life"].to_numpy(),
+                        frame["unit_id"].astype(str).to_numpy()))
+    ordered = frame.iloc[order]
+    failed = ordered["failed"].to_numpy(bool).astype(np.int64)
+    keys = ordered["unit_id"].astype(str) + "\x1f" + ordered["life"].astype(str)
+    before = pd.Series(failed, index=ordered.index).groupby(keys.to_numpy(), sort=False).cumsum().to_numpy() - failed
+    return np.sort(order[before == 0])
+
+
+def life_statistics(table: LifeTable, group_by: Sequence[str] = (), *,
+                    b_lives: Sequence[float] = DEFAULT_B_LIVES, level: float = DEFAULT_LEVEL) -> pd.DataFrame:
+    """One row for the fleet, then one per level of each ``group_by`` column.
+
+    Columns: ``group_by``, ``group``, ``units``, ``lives``, ``failures``,
+    ``suspensions``, ``time_at_risk_days``, ``mtbf_days``, ``mtbf_low_days``,
+    ``mtbf_high_days``, for each ``p`` in ``b_lives`` ``b<p>_days``,
+    ``b<p>_low_days``, ``b<p>_high_days``, then ``observed_from_age_days`` and
+    ``level``. See the module docstring for the definitions.
+    """
+    frame = table.frame
+    groups: list[tuple[tuple[str, str], np.ndarray]] = [(FLEET, np.arange(len(frame)))]
+    for col in group_by:
+        if col not in frame.columns:
+            raise ConfigError(
+                f"[fleet] group_by names {col!r}, which is not a column of the life table "
+                f"({', '.join(map(str, frame.columns))}). Remove it or add the column to the export."
+            )
+        values = frame[col].astype(object)
+        labels = np.where(values.isna().to_numpy(), "(missing)", values.astype(str).to_numpy()).astype(str)
+        for level_ in sorted(set(labels)):
+            groups.append(((str(col), str(level_)), np.flatnonzero(labels == level_)))
+    records = [_group_record(table, key, rows, b_lives, level) for key, rows in groups]
+    return pd.DataFrame.from_records(records)
+
+
+def _group_record(table: LifeTable, key: tuple[str, str], rows: np.ndarray,
+                  b_lives: Sequence[float], level: float) -> dict:
+    part = table.take_rows(rows)
+    counts = part.summary()
+    record = {"group_by": key[0], "group": key[1]}
+    record.update({k: counts[k] for k in ("units", "lives", "failures", "suspensions", "time_at_risk_days")})
+    estimate, low, high = mtbf_bounds(counts["time_at_risk_days"], counts["failures"], level)
+    record.update(mtbf_days=estimate, mtbf_low_days=low, mtbf_high_days=high)
+    first = part.frame.iloc[first_failure_rows(part.frame)]
+    entry = first["entry_age"].to_numpy(float)
+    exit_ = first["exit_age"].to_numpy(float)
+    event = first["failed"].to_numpy(bool)
+    for p in b_lives:
+        name = f"b{_plain(p)}"
+        estimate, low, high = b_life(entry, exit_, event, p, level)
+        record.update({f"{name}_days": estimate, f"{name}_low_days": low, f"{name}_high_days": high})
+    record["observed_from_age_days"] = float(entry.min()) if len(entry) else float("nan")
+    record["level"] = level
+    return record
+
+
+def fleet_headline(stats: pd.DataFrame) -> dict:
+    """The fleet row's MTBF and B-lives as plain numbers (None where there is none) for summaries."""
+    fleet = stats.iloc[0]
+    keys = [c for c in stats.columns if c.startswith(("mtbf", "b")) and c.endswith("_days")]
+    return {f"fleet_{k}": (None if pd.isna(fleet[k]) else round(float(fleet[k]), 1)) for k in keys} | {
+        "life_statistics_level": float(fleet["level"])}
+
+
+def _plain(p: float) -> str:
+    return str(int(p)) if float(p).is_integer() else str(p).replace(".", "_")
+
+
+def write_life_statistics(stats: pd.DataFrame, out_dir: str | Path) -> Path:
+    """Write ``life_statistics.csv`` atomically; return its path. Days as whole numbers
+    (empty where there is no value)."""
+    out = stats.copy()
+    for col in [c for c in out.columns if c.endswith("_days")]:
+        out[col] = out[col].astype(float).round(0).astype("Int64")
+    return _atomic.write_csv(Path(out_dir) / LIFE_STATISTICS_FILE, out)
+
+
+__all__ = ["LIFE_STATISTICS_FILE", "life_statistics", "write_life_statistics", "fleet_headline", "mtbf_bounds",
+           "b_life", "first_failure_rows"]
