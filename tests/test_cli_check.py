@@ -42,9 +42,20 @@ def test_good_export_prints_summary_and_writes_files(tmp_path):
         "time at risk (days)  957.0",
         "as of                2022-06-01",
         "rows in = kept + quarantined: 4 = 4 + 0",
+        # MTBF = 957 days / 1 failure; 90 % bounds 2T / chi2(0.95; 4) and 2T / chi2(0.05; 2) with
+        # chi2 quantiles 9.4877 and 0.10259 (standard chi-square table values)
+        "fleet MTBF: 957 days = 2.6 years (90% bounds 202 to 18,657 days)",
+        # the one failure at 274 days with 2 lives at risk (P-103 left at 172): S drops to 0.5, so
+        # B10 = B50 = 274; log(-log) band at 274: 0.5 ** exp(+-1.645 * sqrt(1/2) / ln 2) = 0.024 .. 0.878
+        "fleet B10 life: 274 days = 0.8 years (90% bounds 274 to 274 days)",
+        "fleet B50 life: 274 days = 0.8 years (90% bounds 274 days to beyond the records)",
         f"quarantine: {out / 'quarantine.csv'}",
         f"life table: {out / 'life_table.csv'}",
+        f"life statistics (per group): {out / 'life_statistics.csv'}",
     ]
+    stats = pd.read_csv(out / "life_statistics.csv")
+    assert stats[["group_by", "group", "failures", "time_at_risk_days", "mtbf_days", "b10_days"]].values.tolist() == [
+        ["fleet", "all", 1, 957, 957, 274]]
     table = pd.read_csv(out / "life_table.csv", dtype={"unit_id": str})
     assert table.loc[table["failed"], "exit_age"].tolist() == [274.0]
     assert list(pd.read_csv(out / "quarantine.csv").columns) == [

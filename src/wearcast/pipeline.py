@@ -6,7 +6,7 @@ its files into ``out_dir`` (through :mod:`wearcast._atomic`) and returns a
 JSON-able summary with the paths it wrote. :data:`JOB_STAGES` lists them in
 order; adding a stage is one line there. No stage imports a later one.
 
-Stages: ``check`` (export → validated life table, quarantine), ``fit``
+Stages: ``check`` (export → validated life table, quarantine, life statistics), ``fit``
 (candidates, cross-validated choice, comparison with the Cox baseline,
 bundles), ``rank`` (bootstrap refits, ranked units, fleet forecast) and
 ``report`` (report.html with figures).
@@ -43,11 +43,16 @@ Stage = Callable[[Config, Path, JobState], dict]
 
 
 def check_stage(config: Config, out_dir: Path, state: JobState) -> dict:
-    """Read and validate the export; write quarantine.csv, life_table.csv, check_summary.json."""
+    """Read and validate the export; write quarantine.csv, life_table.csv,
+    life_statistics.csv (MTBF and B-lives per group) and check_summary.json."""
     from wearcast.io import load_export, write_check
+    from wearcast.lifestats import fleet_headline, life_statistics, write_life_statistics
 
     state.export = load_export(config, quarantine_dir=out_dir)
     summary = write_check(state.export, out_dir)
+    stats = life_statistics(state.export.table, config.fleet.group_by)
+    summary["life_statistics_path"] = str(write_life_statistics(stats, out_dir))
+    summary.update(fleet_headline(stats))
     # Paths inside the run folder are written relative to it, so a folder can be moved
     # (the monthly run renames its staging folder) and reruns elsewhere match byte for byte.
     on_disk = {k: (_relative(v, out_dir) if k.endswith("_path") else v) for k, v in summary.items()}

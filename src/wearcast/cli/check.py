@@ -37,8 +37,35 @@ def format_summary(summary: dict) -> list[str]:
     )
     for reason, count in summary["quarantined_by_reason"].items():
         lines.append(f"  {count:>6}  {reason}")
+    lines.extend(_life_lines(summary))
     lines.append(f"quarantine: {summary['quarantine_path']}")
     lines.append(f"life table: {summary['life_table_path']}")
+    if summary.get("life_statistics_path"):
+        lines.append(f"life statistics (per group): {summary['life_statistics_path']}")
+    return lines
+
+
+def _life_lines(summary: dict) -> list[str]:
+    """Fleet MTBF and B-lives with their bounds, when the check computed them."""
+    level = summary.get("life_statistics_level")
+    if level is None:
+        return []
+    lines = []
+    names = sorted({k[len("fleet_"):-len("_days")] for k in summary
+                    if k.startswith("fleet_") and k.endswith("_days") and "_low" not in k and "_high" not in k},
+                   key=lambda n: (n != "mtbf", len(n), n))
+    for name in names:
+        value, low, high = (summary.get(f"fleet_{name}{part}_days") for part in ("", "_low", "_high"))
+        label = "MTBF" if name == "mtbf" else f"{name.upper()} life"
+        if value is None and low is None:
+            text = "not reached within the records" if name != "mtbf" else "no failures and no time at risk"
+        elif value is None:
+            text = (f"not reached within the records (lower {level:.0%} bound {low:,.0f} days)" if name != "mtbf"
+                    else f"no failures yet (lower {level:.0%} bound {low:,.0f} days)")
+        else:
+            bounds = f"{low:,.0f} to {high:,.0f} days" if high is not None else f"{low:,.0f} days to beyond the records"
+            text = f"{value:,.0f} days = {value / 365.25:,.1f} years ({level:.0%} bounds {bounds})"
+        lines.append(f"fleet {label}: {text}")
     return lines
 
 
@@ -46,20 +73,22 @@ def format_summary(summary: dict) -> list[str]:
     "check",
     help=command_help(
         "Read the export named in CONFIG, set aside rows that cannot be used (each with a "
-        "reason, in quarantine.csv) and show what the life table holds.",
+        "reason, in quarantine.csv) and show what the life table holds, with the fleet's MTBF and "
+        "B10/B50 life (per group in life_statistics.csv).",
         "wearcast check fleet.toml --out checked/",
     ),
 )
 @config_argument
 @click.option("--out", "out_dir", type=click.Path(file_okay=False, path_type=Path), default=None,
-              help="Folder for quarantine.csv and life_table.csv (default: the config's output.folder).")
+              help="Folder for quarantine.csv, life_table.csv and life_statistics.csv (default: the config's "
+                   "output.folder).")
 @library_call
 def command(config: Path, out_dir: Path | None) -> None:
     from wearcast.config import load_config
-    from wearcast.io import check_export
+    from wearcast.pipeline import run_job, stages_named
 
     cfg = load_config(config)
     target = out_dir if out_dir is not None else cfg.path(cfg.output.folder)
-    summary = check_export(cfg, target)
+    summary = run_job(cfg, target, stages_named(["check"]))["check"]
     for line in format_summary(summary):
         click.echo(line)
