@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import pandas as pd
+import pytest
 from click.testing import CliRunner
 
 from wearcast.cli.main import main
@@ -35,6 +36,15 @@ def test_run_demo_returns_paths_and_one_summary_per_stage(tmp_path):
     assert check["units"] == 120 and check["rows_quarantined"] == 0
     assert check["delayed_entries"] > 0 and check["lives"] >= check["units"]
     assert all(pd.io.common.file_exists(p) for k, p in result["scenario"].items() if k != "folder")
+    # the rank stage splits the fleet forecast by failure mode (the demo config sets modes_by = "seal_type")
+    modes = pd.read_csv(tmp_path / "mode_forecast.csv")
+    forecast = pd.read_csv(tmp_path / "fleet_forecast.csv")
+    by_group = modes.groupby(["group_by", "group", "horizon_days"])["expected_failures"].sum()
+    for row in forecast.itertuples():
+        assert by_group[(row.group_by, row.group, row.horizon_days)] == pytest.approx(row.expected_failures, rel=1e-4)
+    assert result["stages"]["rank"]["mode_forecast_path"].endswith("mode_forecast.csv")
+    stats = pd.read_csv(tmp_path / "life_statistics.csv")
+    assert stats["failures"].iloc[0] == check["failures"]
 
 
 def test_demo_reports_an_unwritable_output_folder(tmp_path):

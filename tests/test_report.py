@@ -497,3 +497,25 @@ def test_monthly_changes_read_as_sentences_and_a_table(tmp_path):
     assert "vibration_mm_s high (+0.50); age high (+0.12)" in text
     assert "+7.0" in text and "12.0 %" in text
     assert "['" not in text
+
+
+def test_mode_table_shows_the_mode_forecast_numbers(tmp_path):
+    # fixture shaped like mode_forecast.csv (wearcast.modes.mode_forecast): fleet rows and one site row
+    modes = pd.DataFrame({
+        "group_by": ["fleet"] * 4 + ["site"], "group": ["all"] * 4 + ["North"],
+        "horizon_days": [90, 90, 365, 365, 90], "mode": ["seal_leak", "bearing_wear"] * 2 + ["seal_leak"],
+        "expected_failures": [4.7, 3.9, 18.5, 15.4, 1.1], "chance_only_low": [1, 1, 12, 9, 0],
+        "chance_only_high": [8, 7, 26, 22, 3], "mode_share": [0.55, 0.45, 0.55, 0.45, 1.0]})
+    summary_ = dict(summary(), modes={"modes_by": "seal_type", "mix_by_age": "No clear shift of the mode mix."})
+    inputs = ReportInputs(title="Modes", as_of="2026-11-30", fleet_forecast=fleet_forecast(), summary=summary_,
+                          mode_forecast=modes)
+    parsed = _parse(build_report(inputs, tmp_path / "r")["report"].read_text(encoding="utf-8"))
+    shown = {(n["data-mode"], int(n["data-horizon-days"])): float(n["data-value"])
+             for n in parsed.numbers if n["data-field"] == "mode_expected_failures"}
+    fleet_rows = modes[modes["group_by"] == "fleet"]
+    assert shown == {(m, h): v for m, h, v in zip(fleet_rows["mode"], fleet_rows["horizon_days"],
+                                                   fleet_rows["expected_failures"])}
+    highs = sorted(float(n["data-value"]) for n in parsed.numbers if n["data-field"] == "mode_high")
+    assert highs == sorted(fleet_rows["chance_only_high"].astype(float))
+    text = " ".join(parsed.text)
+    assert "that of its seal_type" in text and "No clear shift of the mode mix." in text

@@ -121,6 +121,8 @@ class RankingSection:
     top_k: int = 50
     stable_share: float = 0.8  # a unit's top-k place is stable when it is there in this share of refits
     jobs: int = 0  # 0 = all cores
+    modes_by: str | None = None  # a column whose levels get their own failure-mode mix (e.g. the seal type)
+    mode_prior_failures: float = 10.0  # weight, in failures, of the fleet's mode mix in each level's mix
 
 
 @dataclass(frozen=True)

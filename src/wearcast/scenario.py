@@ -303,7 +303,9 @@ def config_text(tables: FleetTables, seed: int) -> str:
         "bootstrap = 100\n\n"
         "[ranking]\n"
         "refits = 40\n"
-        "top_k = 50\n\n"
+        "top_k = 50\n"
+        "# seals tilt which way a pump set fails, so each seal type gets its own failure-mode mix\n"
+        'modes_by = "seal_type"\n\n'
         "[output]\n"
         'folder = "wearcast-output"\n'
     )

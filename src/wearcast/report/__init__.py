@@ -57,7 +57,8 @@ class ReportInputs:
     or a frame. ``drift``: ``covariate``, ``psi``, ``level``.
     ``life_statistics``: MTBF and B-lives per group (``life_statistics.csv``,
     :func:`wearcast.lifestats.life_statistics`); computed from ``life_table``
-    when not given.
+    when not given. ``mode_forecast``: expected failures per failure mode
+    (``mode_forecast.csv``, :func:`wearcast.modes.mode_forecast`).
     """
 
     title: str = "Fleet failure-risk report"
@@ -81,6 +82,7 @@ class ReportInputs:
     monthly_changes: dict | None = None
     drift: pd.DataFrame | None = None
     life_statistics: pd.DataFrame | None = None
+    mode_forecast: pd.DataFrame | None = None
     top_k: int = 20
 
     def group_columns(self, ranked: pd.DataFrame) -> list[str]:
@@ -151,7 +153,7 @@ def report_inputs_from_run_folder(folder: str | Path, **overrides: Any) -> Repor
     ``comparison.csv``, ``metrics.json``, ``calibration.csv``,
     ``backtest_summary.csv``, ``oob_curve.csv``, ``cv_curve.csv``,
     ``importance.csv``, ``contributions.csv``, ``predicted_survival.csv``,
-    ``drift.csv``, ``life_statistics.csv``, ``monthly_changes.json``, ``check_summary.json`` and
+    ``drift.csv``, ``life_statistics.csv``, ``mode_forecast.csv``, ``monthly_changes.json``, ``check_summary.json`` and
     ``life_table.csv`` (searched in the folder and its direct subfolders).
     ``overrides`` replace any field (for example ``life_table=`` or ``top_k=``).
     """
@@ -175,6 +177,7 @@ def report_inputs_from_run_folder(folder: str | Path, **overrides: Any) -> Repor
         "predicted_survival": _read_csv(folder, "predicted_survival.csv"),
         "drift": _read_csv(folder, "drift.csv"),
         "life_statistics": _read_csv(folder, "life_statistics.csv", keep_default_na=False, na_values=[""]),
+        "mode_forecast": _read_csv(folder, "mode_forecast.csv", keep_default_na=False, na_values=[""]),
         "monthly_changes": _read_json(folder, "monthly_changes.json"),
         "data_quality": _read_json(folder, "check_summary.json"),
         "group_by": summary.get("group_by"),

@@ -12,7 +12,7 @@ import numpy as np
 import pandas as pd
 
 from wearcast import _product_limit
-from wearcast.report import _curves, _figures
+from wearcast.report import _curves, _figures, _fleet_tables
 from wearcast.report import _html as h
 from wearcast.report import _normalise as norm
 
@@ -62,6 +62,7 @@ def headline(inputs) -> Section:
                     f"Expected failures in each group for each planning horizon. The dot is the expected "
                     f"number, the thin dark line its {level} interval including model uncertainty, the wide "
                     "light band the spread from chance alone."))
+    parts.extend(_fleet_tables.mode_table(inputs.mode_forecast, inputs.summary))
     facts = _summary_facts(inputs.summary)
     if facts:
         parts.append(f'<p class="facts">{facts}</p>')
@@ -310,63 +311,9 @@ def fleet(inputs) -> Section:
         ("lives entering records late", h.number(facts["delayed_entries"], h.fmt_count, "delayed_entries")),
         ("unit-years observed", h.number(facts["time_at_risk_days"] / 365.25, lambda v: f"{v:,.0f}", "unit_years")),
     ], caption="What the curves are built from."))
-    parts.extend(_life_statistics(inputs, table))
+    parts.extend(_fleet_tables.life_statistics_table(inputs, table))
     return h.section("fleet", "Fleet reliability", "".join(parts),
                      lead="How the fleet as a whole has survived so far, read from the records alone."), figures
-
-
-def _life_statistics(inputs, table) -> list[str]:
-    """MTBF and B-lives per group (life_statistics.csv, or computed from the life table)."""
-    stats = inputs.life_statistics
-    if stats is None:
-        from wearcast.lifestats import life_statistics
-
-        stats = life_statistics(table, [inputs.group_by] if inputs.group_by in table.frame.columns else [])
-    if stats is None or stats.empty or "mtbf_days" not in stats.columns:
-        return []
-    level = float(stats["level"].iloc[0]) if "level" in stats.columns else 0.9
-    frame = stats.copy()
-    is_fleet = (frame["group_by"] == "fleet") & (frame["group"] == "all")
-    frame["label"] = np.where(is_fleet, "whole fleet", frame["group"].astype(str))
-    by_names = sorted(set(frame.loc[~is_fleet, "group_by"].astype(str)))
-    # own field names, so a reader's data-field lookup does not confuse them with the fleet facts above
-    frame["group_failures"] = frame["failures"]
-    frame["group_unit_years"] = frame["time_at_risk_days"] / 365.25
-
-    def bounds(name):
-        def render(row):
-            low, high = row.get(f"{name}_low_days"), row.get(f"{name}_high_days")
-            if h.is_missing(low):
-                return "–"
-            lower = h.number(low, h.fmt_years, f"{name}_low_days")
-            if h.is_missing(high):
-                return f"≥ {lower}"
-            return f"{lower}–{h.number(high, h.fmt_years, f'{name}_high_days')}"
-        return render
-
-    group_header = f"Group ({', '.join(by_names)})" if by_names else "Group"
-    columns = [h.Column(group_header, "label", numeric=False), h.Column("Failures", "group_failures", h.fmt_count),
-               h.Column("Unit-years", "group_unit_years", lambda v: "–" if h.is_missing(v) else f"{float(v):,.0f}"),
-               h.Column("MTBF", "mtbf_days", h.fmt_years),
-               h.Column(f"{level * 100:.0f} % bounds", "mtbf_low_days", render=bounds("mtbf"))]
-    for name in sorted({c[:-len("_days")] for c in frame.columns
-                        if c.startswith("b") and c.endswith("_days") and "_low" not in c and "_high" not in c},
-                       key=lambda n: float(n[1:].replace("_", "."))):
-        label = name.upper()
-        columns.append(h.Column(f"{label} life", f"{name}_days", h.fmt_years))
-        columns.append(h.Column(f"{level * 100:.0f} % bounds", f"{name}_low_days", render=bounds(name)))
-    conditional = frame["observed_from_age_days"].max() if "observed_from_age_days" in frame.columns else 0.0
-    caveat = (" Some groups have no unit recorded from new, so their B-lives are conditional on reaching the "
-              "youngest recorded age (observed_from_age_days in life_statistics.csv)." if conditional and conditional > 0 else "")
-    return [
-        h.table(frame, columns, caption="Life statistics from the records alone (ages and MTBF in years)", cls="life-stats", table_id="life-stats"),
-        h.paragraph(
-            "B10 life: the age by which one unit in ten has failed, read off the survival curve above (late "
-            "entry respected); B50 is the median life. A dash means the curve has not fallen that far within "
-            "the records; \"≥\" marks a bound beyond them. MTBF: unit-years observed divided by "
-            "failures, which assumes a constant failure rate; when the rate rises with age (wear-out), trust "
-            f"the B-lives over the MTBF. Bounds are {level * 100:.0f} % intervals for sampling only.{caveat}"),
-    ]
 
 
 def _age_with_enough_at_risk(entry, exit, minimum: int = 10) -> float:

@@ -1,0 +1,97 @@
+"""Tables of the report that read fleet-level files: life statistics and failures by mode."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from wearcast.report import _html as h
+
+
+def life_statistics_table(inputs, table) -> list[str]:
+    """MTBF and B-lives per group (life_statistics.csv, or computed from the life table)."""
+    stats = inputs.life_statistics
+    if stats is None:
+        from wearcast.lifestats import life_statistics
+
+        stats = life_statistics(table, [inputs.group_by] if inputs.group_by in table.frame.columns else [])
+    if stats is None or stats.empty or "mtbf_days" not in stats.columns:
+        return []
+    level = float(stats["level"].iloc[0]) if "level" in stats.columns else 0.9
+    frame = stats.copy()
+    is_fleet = (frame["group_by"] == "fleet") & (frame["group"] == "all")
+    frame["label"] = np.where(is_fleet, "whole fleet", frame["group"].astype(str))
+    by_names = sorted(set(frame.loc[~is_fleet, "group_by"].astype(str)))
+    # own field names, so a reader's data-field lookup does not confuse them with the fleet facts above
+    frame["group_failures"] = frame["failures"]
+    frame["group_unit_years"] = frame["time_at_risk_days"] / 365.25
+
+    def bounds(name):
+        def render(row):
+            low, high = row.get(f"{name}_low_days"), row.get(f"{name}_high_days")
+            if h.is_missing(low):
+                return "–"
+            lower = h.number(low, h.fmt_years, f"{name}_low_days")
+            if h.is_missing(high):
+                return f"≥ {lower}"
+            return f"{lower}–{h.number(high, h.fmt_years, f'{name}_high_days')}"
+        return render
+
+    group_header = f"Group ({', '.join(by_names)})" if by_names else "Group"
+    columns = [h.Column(group_header, "label", numeric=False), h.Column("Failures", "group_failures", h.fmt_count),
+               h.Column("Unit-years", "group_unit_years", lambda v: "–" if h.is_missing(v) else f"{float(v):,.0f}"),
+               h.Column("MTBF", "mtbf_days", h.fmt_years),
+               h.Column(f"{level * 100:.0f} % bounds", "mtbf_low_days", render=bounds("mtbf"))]
+    for name in sorted({c[:-len("_days")] for c in frame.columns
+                        if c.startswith("b") and c.endswith("_days") and "_low" not in c and "_high" not in c},
+                       key=lambda n: float(n[1:].replace("_", "."))):
+        label = name.upper()
+        columns.append(h.Column(f"{label} life", f"{name}_days", h.fmt_years))
+        columns.append(h.Column(f"{level * 100:.0f} % bounds", f"{name}_low_days", render=bounds(name)))
+    conditional = frame["observed_from_age_days"].max() if "observed_from_age_days" in frame.columns else 0.0
+    caveat = (" Some groups have no unit recorded from new, so their B-lives are conditional on reaching the "
+              "youngest recorded age (observed_from_age_days in life_statistics.csv)." if conditional and conditional > 0 else "")
+    return [
+        h.table(frame, columns, caption="Life statistics from the records alone (ages and MTBF in years)", cls="life-stats", table_id="life-stats"),
+        h.paragraph(
+            "B10 life: the age by which one unit in ten has failed, read off the survival curve above (late "
+            "entry respected); B50 is the median life. A dash means the curve has not fallen that far within "
+            "the records; \"≥\" marks a bound beyond them. MTBF: unit-years observed divided by "
+            "failures, which assumes a constant failure rate; when the rate rises with age (wear-out), trust "
+            f"the B-lives over the MTBF. Bounds are {level * 100:.0f} % intervals for sampling only.{caveat}"),
+    ]
+
+
+def mode_table(forecast: pd.DataFrame | None, summary: dict) -> list[str]:
+    """Expected failures of each mode for the fleet, one column per horizon (mode_forecast.csv)."""
+    if forecast is None or forecast.empty:
+        return []
+    fleet = forecast[(forecast["group_by"] == "fleet") & (forecast["group"].astype(str) == "all")]
+    if fleet.empty:
+        return []
+    horizons = sorted(fleet["horizon_days"].unique(), key=float)
+    wide = pd.DataFrame({"mode": list(dict.fromkeys(fleet["mode"]))})
+    columns = [h.Column("Failure mode", "mode", numeric=False)]
+    for hz in horizons:
+        part = fleet[fleet["horizon_days"] == hz].set_index("mode")
+        tag = f"{float(hz):g}"
+        for col in ("expected_failures", "chance_only_low", "chance_only_high"):
+            wide[f"{col}_{tag}"] = part[col].reindex(wide["mode"]).to_numpy()
+
+        def cell(row, tag=tag, hz=hz):
+            attrs = {"horizon_days": int(float(hz)), "mode": row["mode"]}
+            return (f'{h.number(row[f"expected_failures_{tag}"], h.fmt_expected, "mode_expected_failures", **attrs)}'
+                    f' <span class="muted">({h.number(row[f"chance_only_low_{tag}"], h.fmt_count, "mode_low", **attrs)}'
+                    f'–{h.number(row[f"chance_only_high_{tag}"], h.fmt_count, "mode_high", **attrs)})</span>')
+        columns.append(h.Column(f"next {int(float(hz)):,} days", f"expected_failures_{tag}", render=cell))
+    info = (summary or {}).get("modes") or {}
+    by = info.get("modes_by")
+    mix = (f"each unit's mix is that of its {by} (shrunk toward the fleet's mix where a {by} has few "
+           "failures)" if by else "every unit is given the fleet's mix")
+    note = (f"Each unit's probability of failing is split by the failure modes recorded in the history: {mix}. "
+            "The range in brackets is the spread from chance alone; it leaves out model uncertainty and "
+            "the uncertainty of the mix itself, so plan spares with some margin above it.")
+    age = info.get("mix_by_age")
+    return [h.table(wide, columns, caption="Expected failures by failure mode, whole fleet (for spares and crews)",
+                    cls="modes", table_id="mode-forecast"),
+            h.note(note + (f" {age}" if age else ""))]
