@@ -124,6 +124,16 @@ def test_outcomes_match_the_failure_log(scenario):
     assert row["observed_inside_interval_365d"] == inside
     summary = result.summary.set_index("model").loc["cox"]
     assert summary["origins_observed_inside_interval_365d"] == int(inside)
+    # by failure mode: observed counts are the log's failure modes in the window, and the
+    # forecast splits the expected count (the scenario config sets modes_by = "seal_type")
+    modes = result.per_mode[result.per_mode["model"] == "cox"].set_index("mode")
+    first = window.sort_values("event_date").drop_duplicates("unit_id")
+    logged = first[first["unit_id"].isin(expected)]["failure_mode"].value_counts()
+    assert modes["observed_failures"].to_dict() == {m: int(logged.get(m, 0)) for m in modes.index}
+    assert modes["expected_failures"].sum() == pytest.approx(row["expected_failures_365d"])
+    assert summary["mode_cells"] == len(modes)
+    assert summary["mode_cells_inside_chance"] == int(modes["inside_chance"].sum())
+    assert (units.loc[units["failed"], "mode"] != "").all() and (units.loc[~units["failed"], "mode"] == "").all()
 
 
 def test_window_outcomes_by_hand():
@@ -135,10 +145,11 @@ def test_window_outcomes_by_hand():
     later = LifeTable.from_frame(pd.DataFrame({
         "unit_id": ["A", "A", "B", "C", "D", "D"], "life": [1, 2, 1, 1, 1, 1],
         "entry_age": [0.0, 0.0, 0.0, 0.0, 0.0, 50.0], "exit_age": [140.0, 320.0, 230.0, 665.0, 50.0, 415.0],
-        "failed": [True, False, False, False, False, False]}))
+        "failed": [True, False, False, False, False, False], "mode": ["seal", "", "", "", "", ""]}))
     out = backtest.window_outcomes(at_origin, later, 365)
     assert out["failed"].tolist() == [True, False, False, False]
     assert out["days_observed"].tolist() == [40.0, 30.0, 365.0, 365.0]
+    assert out["mode"].tolist() == ["seal", "", "", ""]
 
 
 def test_origins_and_written_files(tmp_path):

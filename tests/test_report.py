@@ -519,3 +519,14 @@ def test_mode_table_shows_the_mode_forecast_numbers(tmp_path):
     assert highs == sorted(fleet_rows["chance_only_high"].astype(float))
     text = " ".join(parsed.text)
     assert "that of its seal_type" in text and "No clear shift of the mode mix." in text
+
+
+def test_backtest_by_mode_sentence_counts_cells(tmp_path):
+    bt = backtest_summary().assign(mode_cells=[24, 24], mode_cells_inside_chance=[19, 17])
+    inputs = ReportInputs(title="Backtest", as_of="2026-11-30", backtest_summary=bt)
+    parsed = _parse(build_report(inputs, tmp_path / "r")["report"].read_text(encoding="utf-8"))
+    text = " ".join(parsed.text)
+    assert "(past dates x modes): boosted in 19 of 24, cox in 17 of 24." in text
+    plain = ReportInputs(title="Backtest", as_of="2026-11-30", backtest_summary=backtest_summary())
+    assert "Split by failure mode" not in " ".join(
+        _parse(build_report(plain, tmp_path / "p")["report"].read_text(encoding="utf-8")).text)

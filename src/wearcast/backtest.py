@@ -45,6 +45,7 @@ from wearcast.io import load_export
 from wearcast.lifetable import LifeTable
 from wearcast.metrics import harrell_c
 from wearcast.models.base import SurvivalModel
+from wearcast.modes import NOT_RECORDED, mode_forecast, mode_shares
 
 BASELINE = "cox"
 
@@ -56,7 +57,9 @@ class BacktestResult:
     ``per_origin``: one row per (origin, model); ``summary``: one row per model
     (precision and lifts pooled over origins, counts summed, C as mean and
     standard error); ``units``: every scored unit (origin, model, unit_id, life,
-    age_days, probability, failed, days_observed).
+    age_days, probability, failed, days_observed, mode); ``per_mode``: one row per
+    (origin, model, failure mode) with the forecast by mode (:mod:`wearcast.modes`)
+    against the failures of that mode in the window (empty when no mode is recorded).
     """
 
     horizon_days: int
@@ -67,6 +70,7 @@ class BacktestResult:
     units: pd.DataFrame = field(repr=False)
     seed: int = 0
     notes: list[str] = field(default_factory=list)
+    per_mode: pd.DataFrame | None = None
 
 
 def origin_dates(origin: dt.date, every_months: int | None, origins: int) -> list[dt.date]:
@@ -105,7 +109,9 @@ def window_outcomes(at_origin: LifeTable, later: LifeTable, horizon_days: float)
     matched on (unit_id, life). Returns unit_id, life, age_days (age at the
     origin), failed (bool: a failure of that life within the window) and
     days_observed (days of the window seen: to the failure, the end of the
-    record, or the full horizon), in the order of ``at_origin.in_service()``.
+    record, or the full horizon) and mode (the failure's mode, ``(not
+    recorded)`` when blank, ``""`` without a failure), in the order of
+    ``at_origin.in_service()``.
     """
     open_rows = at_origin.in_service().frame
     keys = pd.DataFrame({
@@ -114,10 +120,12 @@ def window_outcomes(at_origin: LifeTable, later: LifeTable, horizon_days: float)
         "age_days": open_rows["exit_age"].to_numpy(float),
         "_pos": np.arange(len(open_rows)),
     })
-    f = later.frame[["unit_id", "life", "exit_age", "failed"]]
+    f = later.frame[["unit_id", "life", "exit_age", "failed", "mode"]]
     joined = keys.merge(f, on=["unit_id", "life"], how="left")
     joined = joined[joined["exit_age"] > joined["age_days"]]
-    fail_age = joined[joined["failed"]].groupby("_pos")["exit_age"].min()
+    first_failure = joined[joined["failed"]].sort_values("exit_age", kind="stable").groupby("_pos").head(1)
+    fail_age = first_failure.set_index("_pos")["exit_age"]
+    fail_mode = first_failure.set_index("_pos")["mode"]
     last_age = joined.groupby("_pos")["exit_age"].max()
     h = float(horizon_days)
     fail = keys["_pos"].map(fail_age).to_numpy(float)
@@ -128,6 +136,8 @@ def window_outcomes(at_origin: LifeTable, later: LifeTable, horizon_days: float)
     out = keys.drop(columns="_pos")
     out["failed"] = failed
     out["days_observed"] = seen
+    modes = keys["_pos"].map(fail_mode).fillna("").astype(str).str.strip().to_numpy()
+    out["mode"] = np.where(failed, np.where(modes == "", NOT_RECORDED, modes), "")
     return out
 
 
@@ -206,7 +216,7 @@ def run_backtest(
         # only the export's last date is used from this full read, never its records
         full_as_of = load_export(config).table.as_of
         export_end = None if full_as_of is None else full_as_of.date()
-    rows, unit_frames = [], []
+    rows, unit_frames, mode_rows = [], [], []
     for i, day in enumerate(dates):
         end = day + dt.timedelta(days=horizon_days)
         if export_end is not None and end > export_end:
@@ -235,14 +245,54 @@ def run_backtest(
                          "fit_failures": fit_table.n_failures,
                          **score_origin(p, outcome, horizon_days, top_k), **forecast})
             unit_frames.append(outcome.assign(origin=day, model=name, probability=p))
+            mode_rows += [{"origin": day, "model": name, **r}
+                          for r in mode_check(fit_table, p, outcome, horizon_days, config.ranking.modes_by,
+                                              config.ranking.mode_prior_failures)]
     per_origin = pd.DataFrame(rows)
+    per_mode = pd.DataFrame(mode_rows, columns=["origin", "model", *MODE_COLUMNS])
     _add_cox_lift(per_origin, horizon_days, top_k)
     units = pd.concat(unit_frames, ignore_index=True)[
-        ["origin", "model", "unit_id", "life", "age_days", "probability", "failed", "days_observed"]]
+        ["origin", "model", "unit_id", "life", "age_days", "probability", "failed", "days_observed", "mode"]]
     summary = _summarise(per_origin, names, horizon_days, top_k)
+    if not per_mode.empty:
+        cells = per_mode.groupby("model", sort=False)["inside_chance"].agg(["size", "sum"])
+        summary["mode_cells"] = summary["model"].map(cells["size"]).fillna(0).astype(int)
+        summary["mode_cells_inside_chance"] = summary["model"].map(cells["sum"]).fillna(0).astype(int)
     notes = [f"Outcomes: failures recorded within {horizon_days} days after each origin; models fitted only on "
              "records dated on or before the origin."]
-    return BacktestResult(horizon_days, top_k, dates, per_origin, summary, units, seed, notes)
+    return BacktestResult(horizon_days, top_k, dates, per_origin, summary, units, seed, notes, per_mode)
+
+
+MODE_COLUMNS = ["mode", "expected_failures", "chance_only_low", "chance_only_high", "observed_failures",
+                "inside_chance"]
+
+
+def mode_check(fit_table: LifeTable, p: np.ndarray, outcome: pd.DataFrame, horizon_days: int,
+               modes_by: str | None, prior_failures: float) -> list[dict]:
+    """The forecast by failure mode made at the origin against the modes that failed in the window.
+
+    One dict per mode (modes of the fit-time history first, then any mode seen only in the
+    window, with nothing expected); empty when the history records no mode.
+    """
+    shares = mode_shares(fit_table, by=modes_by, prior_failures=prior_failures)
+    if shares.empty or set(shares["mode"]) == {NOT_RECORDED}:
+        return []
+    units = pd.DataFrame({f"p_fail_{float(horizon_days):g}d": np.asarray(p, float)})
+    if modes_by is not None:
+        units[modes_by] = fit_table.in_service().frame[modes_by].to_numpy()
+    forecast = mode_forecast(units, [horizon_days], shares, by=modes_by)
+    observed = outcome.loc[outcome["failed"].to_numpy(bool), "mode"].value_counts()
+    out = []
+    for row in forecast.itertuples(index=False):
+        seen = int(observed.get(row.mode, 0))
+        out.append({"mode": row.mode, "expected_failures": float(row.expected_failures),
+                    "chance_only_low": int(row.chance_only_low), "chance_only_high": int(row.chance_only_high),
+                    "observed_failures": seen,
+                    "inside_chance": bool(row.chance_only_low <= seen <= row.chance_only_high)})
+    for mode in sorted(set(observed.index) - set(forecast["mode"])):
+        out.append({"mode": mode, "expected_failures": 0.0, "chance_only_low": 0, "chance_only_high": 0,
+                    "observed_failures": int(observed[mode]), "inside_chance": False})
+    return out
 
 
 def _forecast_interval(table: LifeTable, model: SurvivalModel, refits: int, seed: int, horizon_days: int,
@@ -311,7 +361,8 @@ def _summarise(per_origin: pd.DataFrame, models: list[str], horizon_days: int, t
 
 
 def write_backtest(result: BacktestResult, out_dir) -> list[Path]:
-    """Write backtest_origins.csv, backtest_summary.csv and backtest.json atomically."""
+    """Write backtest_origins.csv, backtest_summary.csv, backtest_modes.csv (when failure
+    modes are recorded) and backtest.json atomically."""
     out_dir = Path(out_dir)
     per_origin = result.per_origin.assign(origin=[d.isoformat() for d in result.per_origin["origin"]])
     payload = {
@@ -323,8 +374,13 @@ def write_backtest(result: BacktestResult, out_dir) -> list[Path]:
         "per_origin": json.loads(per_origin.to_json(orient="records")),
         "summary": json.loads(result.summary.to_json(orient="records")),
     }
-    return [
+    written = [
         _atomic.write_csv(out_dir / "backtest_origins.csv", per_origin),
         _atomic.write_csv(out_dir / "backtest_summary.csv", result.summary),
-        _atomic.write_json(out_dir / "backtest.json", payload),
     ]
+    if result.per_mode is not None and not result.per_mode.empty:
+        per_mode = result.per_mode.assign(origin=[d.isoformat() for d in result.per_mode["origin"]])
+        payload["per_mode"] = json.loads(per_mode.to_json(orient="records"))
+        written.append(_atomic.write_csv(out_dir / "backtest_modes.csv", per_mode))
+    written.append(_atomic.write_json(out_dir / "backtest.json", payload))
+    return written

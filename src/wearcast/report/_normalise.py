@@ -213,6 +213,20 @@ def interval_hits(backtest: pd.DataFrame) -> str:
     return ""
 
 
+def mode_hits(backtest: pd.DataFrame) -> str:
+    """One sentence: in how many (past date, failure mode) cells the observed count of that mode
+    fell inside the forecast-by-mode's chance interval, per model; empty without those columns."""
+    if backtest is None or backtest.empty or not {"model", "mode_cells", "mode_cells_inside_chance"} <= set(backtest.columns):
+        return ""
+    counts = ", ".join(f"{row['model']} in {int(row['mode_cells_inside_chance'])} of {int(row['mode_cells'])}"
+                       for _, row in backtest.iterrows() if int(row["mode_cells"]) > 0)
+    if not counts:
+        return ""
+    return ("Split by failure mode, the observed count of each mode fell inside the 90 % chance interval of "
+            f"its forecast (past dates x modes): {counts}. That interval leaves out model uncertainty and "
+            "the uncertainty of the mode mix, so expect it to hold less often than nine times in ten.")
+
+
 def calibration_counts(comparison: pd.DataFrame) -> pd.DataFrame | None:
     """Expected against observed failures per model and horizon from the comparison table."""
     if comparison is None or comparison.empty or "model" not in comparison.columns:

@@ -243,6 +243,9 @@ def evidence(inputs) -> Section:
         held = norm.interval_hits(inputs.backtest_summary)
         if held:
             parts.append(h.paragraph(held))
+        by_mode = norm.mode_hits(inputs.backtest_summary)
+        if by_mode:
+            parts.append(h.paragraph(by_mode))
     curves = []
     oob = norm.tree_curve(inputs.oob_curve, "oob_concordance")
     if oob is not None:
