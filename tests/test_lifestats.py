@@ -151,3 +151,36 @@ def test_groups_add_up_to_the_fleet():
     assert groups["time_at_risk_days"].sum() == pytest.approx(fleet["time_at_risk_days"])
     with pytest.raises(ConfigError, match="group_by names 'site'"):
         life_statistics(_macs_table(), ["site"])
+
+
+def test_weibull_columns_are_lifelines_fit_with_entry_and_read_in_words():
+    # Reference: lifelines WeibullFitter(entry=...) on the macs data (scale lambda_, shape rho_).
+    from lifelines import WeibullFitter
+
+    from wearcast.lifestats import fleet_headline, shape_reading
+
+    df = _macs()
+    ref = WeibullFitter().fit(df["T"], df["D"], entry=df["W"])
+    stats = life_statistics(_macs_table())
+    fleet = stats.iloc[0]
+    assert fleet["weibull_shape"] == pytest.approx(ref.rho_, rel=2e-5)
+    assert fleet["weibull_scale_days"] == pytest.approx(ref.lambda_, rel=2e-5)
+    assert fleet["weibull_shape_low"] < 1.0 < fleet["weibull_shape_high"]  # 0.80 .. 1.45 on these data
+    headline = fleet_headline(stats)
+    assert headline["fleet_weibull_reading"] == "no clear trend with age (a constant, random failure rate fits)"
+    assert shape_reading(2.0, 1.6, 2.4) == "failure rate rising with age (wear-out)"
+    assert shape_reading(0.6, 0.4, 0.8) == "failure rate falling with age (early-life failures)"
+    assert shape_reading(float("nan"), float("nan"), float("nan")) == "too few failures for a Weibull fit"
+
+
+def test_check_prints_the_weibull_line():
+    from wearcast.cli.check import format_summary
+
+    summary = {"rows_read": 5, "rows_kept": 5, "rows_quarantined": 0, "quarantined_by_reason": {},
+               "quarantine_path": "q.csv", "life_table_path": "l.csv", "life_statistics_level": 0.9,
+               "fleet_mtbf_days": 1000.0, "fleet_mtbf_low_days": 800.0, "fleet_mtbf_high_days": 1300.0,
+               "fleet_weibull_shape": 1.93, "fleet_weibull_shape_low": 1.71, "fleet_weibull_shape_high": 2.18,
+               "fleet_weibull_reading": "failure rate rising with age (wear-out)"}
+    lines = format_summary(summary)
+    assert "fleet MTBF: 1,000 days = 2.7 years (90% bounds 800 to 1,300 days)" in lines
+    assert "fleet Weibull shape: 1.93 (90% bounds 1.71 to 2.18): failure rate rising with age (wear-out)" in lines

@@ -24,7 +24,14 @@ for the whole fleet and for each level of the ``[fleet] group_by`` columns:
   (``observed_from_age_days``), usually 0 when some units were installed
   after records began.
 
-Both assume the records are representative of the fleet's future duty; they
+* **Weibull shape and scale**: the two-parameter Weibull fitted by maximum
+  likelihood to the same lives (delayed entry and suspensions respected,
+  :mod:`wearcast._weibull`), with Wald bounds on the log scale. A shape
+  above 1 means a failure rate rising with age (wear-out), below 1 falling
+  (early-life failures), near 1 constant; :func:`shape_reading` says so only
+  when the bounds are on one side of 1.
+
+All assume the records are representative of the fleet's future duty; they
 describe the population, not any one unit (the ranked list does that).
 """
 
@@ -39,6 +46,7 @@ from scipy.stats import chi2
 
 from wearcast import _atomic
 from wearcast._product_limit import age_at_survival, product_limit_survival
+from wearcast._weibull import fit_weibull
 from wearcast.exceptions import ConfigError
 from wearcast.lifetable import LifeTable
 
@@ -94,8 +102,9 @@ def life_statistics(table: LifeTable, group_by: Sequence[str] = (), *,
     Columns: ``group_by``, ``group``, ``units``, ``lives``, ``failures``,
     ``suspensions``, ``time_at_risk_days``, ``mtbf_days``, ``mtbf_low_days``,
     ``mtbf_high_days``, for each ``p`` in ``b_lives`` ``b<p>_days``,
-    ``b<p>_low_days``, ``b<p>_high_days``, then ``observed_from_age_days`` and
-    ``level``. See the module docstring for the definitions.
+    ``b<p>_low_days``, ``b<p>_high_days``, ``weibull_shape`` (+ ``_low``,
+    ``_high``), ``weibull_scale_days`` (+ ``_low_days``, ``_high_days``), then
+    ``observed_from_age_days`` and ``level``. See the module docstring for the definitions.
     """
     frame = table.frame
     groups: list[tuple[tuple[str, str], np.ndarray]] = [(FLEET, np.arange(len(frame)))]
@@ -129,17 +138,36 @@ def _group_record(table: LifeTable, key: tuple[str, str], rows: np.ndarray,
         name = f"b{_plain(p)}"
         estimate, low, high = b_life(entry, exit_, event, p, level)
         record.update({f"{name}_days": estimate, f"{name}_low_days": low, f"{name}_high_days": high})
+    weibull = fit_weibull(entry, exit_, event, level=level)
+    record.update(weibull_shape=weibull["shape"], weibull_shape_low=weibull["shape_low"],
+                  weibull_shape_high=weibull["shape_high"], weibull_scale_days=weibull["scale"],
+                  weibull_scale_low_days=weibull["scale_low"], weibull_scale_high_days=weibull["scale_high"])
     record["observed_from_age_days"] = float(entry.min()) if len(entry) else float("nan")
     record["level"] = level
     return record
+
+
+def shape_reading(shape: float, low: float, high: float) -> str:
+    """The Weibull shape in words, called only when its bounds are on one side of 1."""
+    if not np.isfinite(shape):
+        return "too few failures for a Weibull fit"
+    if low > 1.0:
+        return "failure rate rising with age (wear-out)"
+    if high < 1.0:
+        return "failure rate falling with age (early-life failures)"
+    return "no clear trend with age (a constant, random failure rate fits)"
 
 
 def fleet_headline(stats: pd.DataFrame) -> dict:
     """The fleet row's MTBF and B-lives as plain numbers (None where there is none) for summaries."""
     fleet = stats.iloc[0]
     keys = [c for c in stats.columns if c.startswith(("mtbf", "b")) and c.endswith("_days")]
-    return {f"fleet_{k}": (None if pd.isna(fleet[k]) else round(float(fleet[k]), 1)) for k in keys} | {
-        "life_statistics_level": float(fleet["level"])}
+    out = {f"fleet_{k}": (None if pd.isna(fleet[k]) else round(float(fleet[k]), 1)) for k in keys}
+    shape = [fleet.get(f"weibull_shape{part}", np.nan) for part in ("", "_low", "_high")]
+    out.update({f"fleet_weibull_shape{part}": (None if pd.isna(v) else round(float(v), 3))
+                for part, v in zip(("", "_low", "_high"), shape)})
+    out["fleet_weibull_reading"] = shape_reading(*(float(v) for v in shape))
+    return out | {"life_statistics_level": float(fleet["level"])}
 
 
 def _plain(p: float) -> str:
@@ -156,4 +184,4 @@ def write_life_statistics(stats: pd.DataFrame, out_dir: str | Path) -> Path:
 
 
 __all__ = ["LIFE_STATISTICS_FILE", "life_statistics", "write_life_statistics", "fleet_headline", "mtbf_bounds",
-           "b_life", "first_failure_rows"]
+           "b_life", "first_failure_rows", "shape_reading"]

@@ -66,6 +66,10 @@ def _life_lines(summary: dict) -> list[str]:
             bounds = f"{low:,.0f} to {high:,.0f} days" if high is not None else f"{low:,.0f} days to beyond the records"
             text = f"{value:,.0f} days = {value / 365.25:,.1f} years ({level:.0%} bounds {bounds})"
         lines.append(f"fleet {label}: {text}")
+    shape, low, high = (summary.get(f"fleet_weibull_shape{part}") for part in ("", "_low", "_high"))
+    if shape is not None:
+        lines.append(f"fleet Weibull shape: {shape:.2f} ({level:.0%} bounds {low:.2f} to {high:.2f}): "
+                     f"{summary.get('fleet_weibull_reading', '')}")
     return lines
 
 

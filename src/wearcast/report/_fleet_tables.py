@@ -26,40 +26,57 @@ def life_statistics_table(inputs, table) -> list[str]:
     frame["group_failures"] = frame["failures"]
     frame["group_unit_years"] = frame["time_at_risk_days"] / 365.25
 
-    def bounds(name):
+    def with_bounds(name, fmt=h.fmt_years, unit="_days"):
+        """One cell: the estimate, then its bounds in grey ("≥" when the upper one is beyond the records)."""
         def render(row):
-            low, high = row.get(f"{name}_low_days"), row.get(f"{name}_high_days")
+            value, low, high = (row.get(f"{name}{part}{unit}") for part in ("", "_low", "_high"))
+            shown = h.number(value, fmt, f"{name}{unit}")
             if h.is_missing(low):
-                return "–"
-            lower = h.number(low, h.fmt_years, f"{name}_low_days")
-            if h.is_missing(high):
-                return f"≥ {lower}"
-            return f"{lower}–{h.number(high, h.fmt_years, f'{name}_high_days')}"
+                return shown
+            lower = h.number(low, fmt, f"{name}_low{unit}")
+            spread = f"≥ {lower}" if h.is_missing(high) else f"{lower}–{h.number(high, fmt, f'{name}_high{unit}')}"
+            return f'{shown} <span class="muted">({spread})</span>'
         return render
 
     group_header = f"Group ({', '.join(by_names)})" if by_names else "Group"
     columns = [h.Column(group_header, "label", numeric=False), h.Column("Failures", "group_failures", h.fmt_count),
                h.Column("Unit-years", "group_unit_years", lambda v: "–" if h.is_missing(v) else f"{float(v):,.0f}"),
-               h.Column("MTBF", "mtbf_days", h.fmt_years),
-               h.Column(f"{level * 100:.0f} % bounds", "mtbf_low_days", render=bounds("mtbf"))]
+               h.Column("MTBF", "mtbf_days", render=with_bounds("mtbf"))]
     for name in sorted({c[:-len("_days")] for c in frame.columns
                         if c.startswith("b") and c.endswith("_days") and "_low" not in c and "_high" not in c},
                        key=lambda n: float(n[1:].replace("_", "."))):
-        label = name.upper()
-        columns.append(h.Column(f"{label} life", f"{name}_days", h.fmt_years))
-        columns.append(h.Column(f"{level * 100:.0f} % bounds", f"{name}_low_days", render=bounds(name)))
+        columns.append(h.Column(f"{name.upper()} life", f"{name}_days", render=with_bounds(name)))
+    if "weibull_shape" in frame.columns:
+        shape_fmt = lambda v: h.fmt_number(v, 2)  # noqa: E731
+        columns.append(h.Column("Weibull β", "weibull_shape", render=with_bounds("weibull_shape", shape_fmt, "")))
     conditional = frame["observed_from_age_days"].max() if "observed_from_age_days" in frame.columns else 0.0
     caveat = (" Some groups have no unit recorded from new, so their B-lives are conditional on reaching the "
               "youngest recorded age (observed_from_age_days in life_statistics.csv)." if conditional and conditional > 0 else "")
     return [
-        h.table(frame, columns, caption="Life statistics from the records alone (ages and MTBF in years)", cls="life-stats", table_id="life-stats"),
+        h.table(frame, columns, caption=f"Life statistics from the records alone (ages and MTBF in years; {level * 100:.0f} % bounds in brackets)", cls="life-stats", table_id="life-stats"),
         h.paragraph(
             "B10 life: the age by which one unit in ten has failed, read off the survival curve above (late "
             "entry respected); B50 is the median life. A dash means the curve has not fallen that far within "
             "the records; \"≥\" marks a bound beyond them. MTBF: unit-years observed divided by "
             "failures, which assumes a constant failure rate; when the rate rises with age (wear-out), trust "
-            f"the B-lives over the MTBF. Bounds are {level * 100:.0f} % intervals for sampling only.{caveat}"),
+            "the B-lives over the MTBF. Weibull β (shape): from a Weibull distribution fitted to the same lives "
+            "(late entry respected); above 1 the failure rate rises with age (wear-out), below 1 it falls "
+            f"(early-life failures), near 1 it is constant. Bounds are {level * 100:.0f} % intervals for sampling "
+            f"only.{caveat}{_shape_sentence(frame[is_fleet])}"),
     ]
+
+
+def _shape_sentence(fleet: pd.DataFrame) -> str:
+    if fleet.empty or "weibull_shape" not in fleet.columns:
+        return ""
+    from wearcast.lifestats import shape_reading
+
+    row = fleet.iloc[0]
+    shape, low, high = (float(row.get(f"weibull_shape{p}", np.nan)) for p in ("", "_low", "_high"))
+    if not np.isfinite(shape):
+        return ""
+    return (f" For the whole fleet the shape is {shape:.2f} ({low:.2f}–{high:.2f}): "
+            f"{shape_reading(shape, low, high)}.")
 
 
 def mode_table(forecast: pd.DataFrame | None, summary: dict) -> list[str]:
