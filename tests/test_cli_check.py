@@ -146,3 +146,17 @@ def test_help_names_the_command_and_the_caution():
     result = CliRunner().invoke(command, ["--help"])
     assert result.exit_code == 0
     assert "quarantine.csv" in result.output and "Caution:" in result.output
+
+
+def test_costs_need_both_keys_and_too_few_failures_give_no_age(tmp_path):
+    base = inputs("register_ambiguous.csv", "events_ambiguous.csv", 'date_format = "%d/%m/%Y"\n') + \
+        "[fleet]\nas_of = 2022-06-01\n"
+    half = run(tmp_path, base + "[costs]\nfailure = 5.0\n")
+    assert half.exit_code == 78
+    assert "[costs] needs both planned_replacement and failure" in half.stderr
+    both = run(tmp_path, base + "[costs]\nplanned_replacement = 1.0\nfailure = 5.0\n")
+    assert both.exit_code == 0, both.stderr
+    # one failure on record: no Weibull fit, so no planned age (and the reason is printed)
+    assert "fleet planned replacement: none (too few failures for a Weibull fit)" in both.stdout.splitlines()
+    ages = pd.read_csv(tmp_path / "out" / "replacement_ages.csv")
+    assert ages["reading"].tolist() == ["too few failures for a Weibull fit"]

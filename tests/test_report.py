@@ -530,3 +530,18 @@ def test_backtest_by_mode_sentence_counts_cells(tmp_path):
     plain = ReportInputs(title="Backtest", as_of="2026-11-30", backtest_summary=backtest_summary())
     assert "Split by failure mode" not in " ".join(
         _parse(build_report(plain, tmp_path / "p")["report"].read_text(encoding="utf-8")).text)
+
+
+def test_replacement_table_shows_the_ages_and_the_caution(tmp_path):
+    from wearcast.replacement import replacement_ages
+
+    stats = pd.DataFrame({"group_by": ["fleet", "site"], "group": ["all", "North"],
+                          "weibull_shape": [2.1, 0.8], "weibull_scale_days": [7500.0, 5000.0]})
+    ages = replacement_ages(stats, 1.0, 5.0)
+    inputs = ReportInputs(title="Ages", as_of="2026-11-30", life_table=life_table(), replacement_ages=ages)
+    parsed = _parse(build_report(inputs, tmp_path / "r")["report"].read_text(encoding="utf-8"))
+    shown = [float(n["data-value"]) for n in parsed.numbers if n["data-field"] == "best_age_days"]
+    assert shown == pytest.approx([ages["best_age_days"].iloc[0]])
+    text = " ".join(parsed.text)
+    assert "planned replacement does not pay" in text
+    assert "never replaces, inspections, manufacturer instructions, local codes and licensed engineering" in text

@@ -144,6 +144,14 @@ class MonthlySection:
 
 
 @dataclass(frozen=True)
+class CostsSection:
+    """Costs for the planned replacement age (same unit for both; only their ratio matters)."""
+
+    planned_replacement: float | None = None
+    failure: float | None = None
+
+
+@dataclass(frozen=True)
 class OutputSection:
     folder: str = "wearcast-output"
 
@@ -157,6 +165,7 @@ class Config:
     ranking: RankingSection = field(default_factory=RankingSection)
     validation: ValidationSection = field(default_factory=ValidationSection)
     monthly: MonthlySection = field(default_factory=MonthlySection)
+    costs: CostsSection = field(default_factory=CostsSection)
     output: OutputSection = field(default_factory=OutputSection)
     #: Folder the config file lives in; relative paths resolve against it.
     base_dir: Path = field(default=Path("."), compare=False)

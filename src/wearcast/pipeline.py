@@ -44,15 +44,30 @@ Stage = Callable[[Config, Path, JobState], dict]
 
 def check_stage(config: Config, out_dir: Path, state: JobState) -> dict:
     """Read and validate the export; write quarantine.csv, life_table.csv,
-    life_statistics.csv (MTBF and B-lives per group) and check_summary.json."""
+    life_statistics.csv (MTBF, B-lives, Weibull per group), replacement_ages.csv
+    (when [costs] are set) and check_summary.json."""
     from wearcast.io import load_export, write_check
+    import pandas as pd
+
     from wearcast.lifestats import fleet_headline, life_statistics, write_life_statistics
+    from wearcast.replacement import check_costs, replacement_ages, write_replacement_ages
 
     state.export = load_export(config, quarantine_dir=out_dir)
     summary = write_check(state.export, out_dir)
     stats = life_statistics(state.export.table, config.fleet.group_by)
     summary["life_statistics_path"] = str(write_life_statistics(stats, out_dir))
     summary.update(fleet_headline(stats))
+    costs = config.costs
+    if check_costs(costs.planned_replacement, costs.failure, config.source):
+        ages = replacement_ages(stats, costs.planned_replacement, costs.failure)
+        summary["replacement_ages_path"] = str(write_replacement_ages(ages, out_dir))
+        fleet = ages.iloc[0]
+        for key, col in (("fleet_best_replacement_age_days", "best_age_days"),
+                         ("fleet_replacement_age_low_days", "age_low_days"),
+                         ("fleet_replacement_age_high_days", "age_high_days"),
+                         ("fleet_replacement_saving", "saving")):
+            summary[key] = None if pd.isna(fleet[col]) else round(float(fleet[col]), 3)
+        summary["fleet_replacement_reading"] = fleet["reading"]
     # Paths inside the run folder are written relative to it, so a folder can be moved
     # (the monthly run renames its staging folder) and reruns elsewhere match byte for byte.
     on_disk = {k: (_relative(v, out_dir) if k.endswith("_path") else v) for k, v in summary.items()}

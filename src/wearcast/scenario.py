@@ -306,6 +306,10 @@ def config_text(tables: FleetTables, seed: int) -> str:
         "top_k = 50\n"
         "# seals tilt which way a pump set fails, so each seal type gets its own failure-mode mix\n"
         'modes_by = "seal_type"\n\n'
+        "# invented relative costs: a failure (call-out, lost pumping, collateral damage) costs five planned swaps\n"
+        "[costs]\n"
+        "planned_replacement = 1.0\n"
+        "failure = 5.0\n\n"
         "[output]\n"
         'folder = "wearcast-output"\n'
     )

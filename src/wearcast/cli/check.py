@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 import click
@@ -51,8 +52,7 @@ def _life_lines(summary: dict) -> list[str]:
     if level is None:
         return []
     lines = []
-    names = sorted({k[len("fleet_"):-len("_days")] for k in summary
-                    if k.startswith("fleet_") and k.endswith("_days") and "_low" not in k and "_high" not in k},
+    names = sorted({m.group(1) for k in summary if (m := re.fullmatch(r"fleet_(mtbf|b\d+(?:_\d+)?)_days", k))},
                    key=lambda n: (n != "mtbf", len(n), n))
     for name in names:
         value, low, high = (summary.get(f"fleet_{name}{part}_days") for part in ("", "_low", "_high"))
@@ -70,6 +70,15 @@ def _life_lines(summary: dict) -> list[str]:
     if shape is not None:
         lines.append(f"fleet Weibull shape: {shape:.2f} ({level:.0%} bounds {low:.2f} to {high:.2f}): "
                      f"{summary.get('fleet_weibull_reading', '')}")
+    if "fleet_replacement_reading" in summary:
+        age = summary.get("fleet_best_replacement_age_days")
+        if age is None:
+            lines.append(f"fleet planned replacement: none ({summary['fleet_replacement_reading']})")
+        else:
+            low, high = summary["fleet_replacement_age_low_days"], summary["fleet_replacement_age_high_days"]
+            lines.append(f"fleet planned replacement: best at {age:,.0f} days = {age / 365.25:.1f} years "
+                         f"(within 5 % of the best cost from {low:,.0f} to {high:,.0f} days), saving "
+                         f"{summary['fleet_replacement_saving']:.0%} of the cost of replacing only at failure")
     return lines
 
 

@@ -59,6 +59,8 @@ class ReportInputs:
     :func:`wearcast.lifestats.life_statistics`); computed from ``life_table``
     when not given. ``mode_forecast``: expected failures per failure mode
     (``mode_forecast.csv``, :func:`wearcast.modes.mode_forecast`).
+    ``replacement_ages``: best planned replacement age per group
+    (``replacement_ages.csv``, :func:`wearcast.replacement.replacement_ages`).
     """
 
     title: str = "Fleet failure-risk report"
@@ -83,6 +85,7 @@ class ReportInputs:
     drift: pd.DataFrame | None = None
     life_statistics: pd.DataFrame | None = None
     mode_forecast: pd.DataFrame | None = None
+    replacement_ages: pd.DataFrame | None = None
     top_k: int = 20
 
     def group_columns(self, ranked: pd.DataFrame) -> list[str]:
@@ -153,7 +156,7 @@ def report_inputs_from_run_folder(folder: str | Path, **overrides: Any) -> Repor
     ``comparison.csv``, ``metrics.json``, ``calibration.csv``,
     ``backtest_summary.csv``, ``oob_curve.csv``, ``cv_curve.csv``,
     ``importance.csv``, ``contributions.csv``, ``predicted_survival.csv``,
-    ``drift.csv``, ``life_statistics.csv``, ``mode_forecast.csv``, ``monthly_changes.json``, ``check_summary.json`` and
+    ``drift.csv``, ``life_statistics.csv``, ``mode_forecast.csv``, ``replacement_ages.csv``, ``monthly_changes.json``, ``check_summary.json`` and
     ``life_table.csv`` (searched in the folder and its direct subfolders).
     ``overrides`` replace any field (for example ``life_table=`` or ``top_k=``).
     """
@@ -178,6 +181,7 @@ def report_inputs_from_run_folder(folder: str | Path, **overrides: Any) -> Repor
         "drift": _read_csv(folder, "drift.csv"),
         "life_statistics": _read_csv(folder, "life_statistics.csv", keep_default_na=False, na_values=[""]),
         "mode_forecast": _read_csv(folder, "mode_forecast.csv", keep_default_na=False, na_values=[""]),
+        "replacement_ages": _read_csv(folder, "replacement_ages.csv", keep_default_na=False, na_values=[""]),
         "monthly_changes": _read_json(folder, "monthly_changes.json"),
         "data_quality": _read_json(folder, "check_summary.json"),
         "group_by": summary.get("group_by"),

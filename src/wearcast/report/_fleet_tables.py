@@ -112,3 +112,32 @@ def mode_table(forecast: pd.DataFrame | None, summary: dict) -> list[str]:
     return [h.table(wide, columns, caption="Expected failures by failure mode, whole fleet (for spares and crews)",
                     cls="modes", table_id="mode-forecast"),
             h.note(note + (f" {age}" if age else ""))]
+
+
+def replacement_table(ages: pd.DataFrame | None) -> list[str]:
+    """Best planned replacement age per group (replacement_ages.csv), with the cost model's limits."""
+    if ages is None or ages.empty or "best_age_days" not in ages.columns:
+        return []
+    frame = ages.copy()
+    is_fleet = (frame["group_by"] == "fleet") & (frame["group"].astype(str) == "all")
+    frame["label"] = np.where(is_fleet, "whole fleet", frame["group"].astype(str))
+
+    def age_cell(row):
+        if h.is_missing(row.get("best_age_days")):
+            return h.esc(row.get("reading", "none"))
+        return (f'{h.number(row["best_age_days"], h.fmt_years, "best_age_days")} <span class="muted">'
+                f'({h.number(row["age_low_days"], h.fmt_years, "age_low_days")}–'
+                f'{h.number(row["age_high_days"], h.fmt_years, "age_high_days")})</span>')
+
+    columns = [h.Column("Group", "label", numeric=False),
+               h.Column("Weibull β", "weibull_shape", lambda v: h.fmt_number(v, 2)),
+               h.Column("Best age to replace, years (within 5 % of the best cost)", "best_age_days", render=age_cell),
+               h.Column("Saving against replacing at failure", "saving", h.fmt_percent)]
+    return [h.table(frame, columns, caption="Planned replacement age from the cost model ([costs] in the config)",
+                    cls="replacement", table_id="replacement-ages"),
+            h.paragraph(
+                "The age at which replacing a still-working unit by plan costs least per year, given the Weibull "
+                "fit above and the two costs in the config (age replacement: Barlow and Proschan 1965). It is a "
+                "fleet-average policy: it ignores each unit's condition and readings (the ranked list has those) "
+                "and consequences a cost cannot carry, so it supports, and never replaces, inspections, "
+                "manufacturer instructions, local codes and licensed engineering judgement.")]
