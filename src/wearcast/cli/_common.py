@@ -3,8 +3,9 @@
 from __future__ import annotations
 
 import functools
-from pathlib import Path
+import re
 import sys
+from pathlib import Path
 
 import click
 
@@ -94,4 +95,40 @@ def forecast_lines(forecast, heading: str = "expected failures in the fleet:") -
     for _, row in fleet.iterrows():
         lines.append(f"  within {int(row['horizon_days'])} days: {float(row['expected_failures']):.1f} "
                      f"(90 % interval {float(row['failures_low']):.0f}-{float(row['failures_high']):.0f})")
+    return lines
+
+
+def life_lines(summary: dict) -> list[str]:
+    """Fleet MTBF and B-lives with their bounds, when the check computed them."""
+    level = summary.get("life_statistics_level")
+    if level is None:
+        return []
+    lines = []
+    names = sorted({m.group(1) for k in summary if (m := re.fullmatch(r"fleet_(mtbf|b\d+(?:_\d+)?)_days", k))},
+                   key=lambda n: (n != "mtbf", len(n), n))
+    for name in names:
+        value, low, high = (summary.get(f"fleet_{name}{part}_days") for part in ("", "_low", "_high"))
+        label = "MTBF" if name == "mtbf" else f"{name.upper()} life"
+        if value is None and low is None:
+            text = "not reached within the records" if name != "mtbf" else "no failures and no time at risk"
+        elif value is None:
+            text = (f"not reached within the records (lower {level:.0%} bound {low:,.0f} days)" if name != "mtbf"
+                    else f"no failures yet (lower {level:.0%} bound {low:,.0f} days)")
+        else:
+            bounds = f"{low:,.0f} to {high:,.0f} days" if high is not None else f"{low:,.0f} days to beyond the records"
+            text = f"{value:,.0f} days = {value / 365.25:,.1f} years ({level:.0%} bounds {bounds})"
+        lines.append(f"fleet {label}: {text}")
+    shape, low, high = (summary.get(f"fleet_weibull_shape{part}") for part in ("", "_low", "_high"))
+    if shape is not None:
+        lines.append(f"fleet Weibull shape: {shape:.2f} ({level:.0%} bounds {low:.2f} to {high:.2f}): "
+                     f"{summary.get('fleet_weibull_reading', '')}")
+    if "fleet_replacement_reading" in summary:
+        age = summary.get("fleet_best_replacement_age_days")
+        if age is None:
+            lines.append(f"fleet planned replacement: none ({summary['fleet_replacement_reading']})")
+        else:
+            low, high = summary["fleet_replacement_age_low_days"], summary["fleet_replacement_age_high_days"]
+            lines.append(f"fleet planned replacement: best at {age:,.0f} days = {age / 365.25:.1f} years "
+                         f"(within 5 % of the best cost from {low:,.0f} to {high:,.0f} days), saving "
+                         f"{summary['fleet_replacement_saving']:.0%} of the cost of replacing only at failure")
     return lines

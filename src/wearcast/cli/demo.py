@@ -6,7 +6,7 @@ from pathlib import Path
 
 import click
 
-from wearcast.cli._common import EPILOG_CAUTION, command_help, forecast_lines, library_call
+from wearcast.cli._common import EPILOG_CAUTION, command_help, forecast_lines, library_call, life_lines
 
 
 def describe(result: dict) -> list[str]:
@@ -28,6 +28,7 @@ def describe(result: dict) -> list[str]:
                     "rows_quarantined"):
             if key in summary:
                 lines.append(f"  {key.replace('_', ' '):<17} {summary[key]}")
+        lines += [f"  {line}" for line in life_lines(summary)]
         for key, value in summary.items():
             if key.endswith("_path") and value:
                 lines.append(f"  {key[:-5].replace('_', ' '):<17} {value}")
