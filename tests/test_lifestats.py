@@ -184,3 +184,20 @@ def test_check_prints_the_weibull_line():
     lines = format_summary(summary)
     assert "fleet MTBF: 1,000 days = 2.7 years (90% bounds 800 to 1,300 days)" in lines
     assert "fleet Weibull shape: 1.93 (90% bounds 1.71 to 2.18): failure rate rising with age (wear-out)" in lines
+
+
+def test_counts_per_group_equal_the_life_table_summary(tmp_path):
+    # lives split by readings and renewed after failures (the invented demo fleet, 300 positions)
+    from wearcast.config import load_config
+    from wearcast.io import load_export
+    from wearcast.scenario import generate_scenario
+
+    files = generate_scenario(tmp_path / "s", n_units=300, seed=4)
+    table = load_export(load_config(files.config)).table
+    stats = life_statistics(table, ["site"]).set_index(["group_by", "group"])
+    keys = ("units", "lives", "failures", "suspensions", "time_at_risk_days")
+    fleet = table.summary()
+    assert [stats.loc[("fleet", "all"), k] for k in keys] == pytest.approx([fleet[k] for k in keys])
+    for site in table.frame["site"].unique():
+        part = table.take_rows(np.flatnonzero((table.frame["site"] == site).to_numpy())).summary()
+        assert [stats.loc[("site", site), k] for k in keys] == pytest.approx([part[k] for k in keys]), site

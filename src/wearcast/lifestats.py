@@ -75,24 +75,50 @@ def mtbf_bounds(time_at_risk: float, failures: int, level: float = DEFAULT_LEVEL
 
 def b_life(entry, exit, event, percent: float, level: float = DEFAULT_LEVEL) -> tuple[float, float, float]:
     """``(estimate, low, high)`` age in days by which ``percent`` % have failed (NaN: not reached)."""
+    return _b_life_from(product_limit_survival(entry, exit, event, level=level), percent)
+
+
+def _b_life_from(curve: dict, percent: float) -> tuple[float, float, float]:
     if not 0.0 < percent < 100.0:
         raise ValueError(f"a B-life percentage must be between 0 and 100, got {percent!r}")
-    curve = product_limit_survival(entry, exit, event, level=level)
     q = 1.0 - percent / 100.0
     return (age_at_survival(curve["age"], curve["survival"], q),
             age_at_survival(curve["age"], curve["low"], q),
             age_at_survival(curve["age"], curve["high"], q))
 
 
+class _Rows:
+    """The life table's rows as arrays sorted by (unit, life, exit age), built once."""
+
+    def __init__(self, frame: pd.DataFrame):
+        unit = pd.factorize(frame["unit_id"].astype(str))[0].astype(np.int64)
+        life = frame["life"].to_numpy(np.int64)
+        key = unit * (int(life.max(initial=0)) + 1) + life  # one integer per (unit, life)
+        self.order = np.lexsort((frame["exit_age"].to_numpy(float), key))
+        self.unit, self.key = unit[self.order], key[self.order]
+        self.entry = frame["entry_age"].to_numpy(float)[self.order]
+        self.exit = frame["exit_age"].to_numpy(float)[self.order]
+        self.failed = frame["failed"].to_numpy(bool)[self.order]
+
+    def subset(self, positions: np.ndarray) -> np.ndarray:
+        """Sorted-order indices of the given frame positions."""
+        mask = np.zeros(len(self.order), bool)
+        mask[positions] = True
+        return np.flatnonzero(mask[self.order])
+
+
+def _first_failure_mask(key: np.ndarray, failed: np.ndarray) -> np.ndarray:
+    """Rows (sorted by life, then exit age) up to and including their life's first failure."""
+    count = np.cumsum(failed.astype(np.int64))
+    start = np.searchsorted(key, key, side="left")  # first row of each row's life
+    before = count - failed - np.where(start > 0, count[np.maximum(start - 1, 0)], 0)
+    return before == 0
+
+
 def first_failure_rows(frame: pd.DataFrame) -> np.ndarray:
     """Positions of the rows of each life up to and including its first failure."""
-    order = np.lexsort((frame["exit_age"].to_numpy(float), frame["life"].to_numpy(),
-                        frame["unit_id"].astype(str).to_numpy()))
-    ordered = frame.iloc[order]
-    failed = ordered["failed"].to_numpy(bool).astype(np.int64)
-    keys = ordered["unit_id"].astype(str) + "\x1f" + ordered["life"].astype(str)
-    before = pd.Series(failed, index=ordered.index).groupby(keys.to_numpy(), sort=False).cumsum().to_numpy() - failed
-    return np.sort(order[before == 0])
+    rows = _Rows(frame)
+    return np.sort(rows.order[_first_failure_mask(rows.key, rows.failed)])
 
 
 def life_statistics(table: LifeTable, group_by: Sequence[str] = (), *,
@@ -107,6 +133,7 @@ def life_statistics(table: LifeTable, group_by: Sequence[str] = (), *,
     ``observed_from_age_days`` and ``level``. See the module docstring for the definitions.
     """
     frame = table.frame
+    rows = _Rows(frame)
     groups: list[tuple[tuple[str, str], np.ndarray]] = [(FLEET, np.arange(len(frame)))]
     for col in group_by:
         if col not in frame.columns:
@@ -118,25 +145,26 @@ def life_statistics(table: LifeTable, group_by: Sequence[str] = (), *,
         labels = np.where(values.isna().to_numpy(), "(missing)", values.astype(str).to_numpy()).astype(str)
         for level_ in sorted(set(labels)):
             groups.append(((str(col), str(level_)), np.flatnonzero(labels == level_)))
-    records = [_group_record(table, key, rows, b_lives, level) for key, rows in groups]
+    records = [_group_record(rows, key, rows.subset(positions), b_lives, level) for key, positions in groups]
     return pd.DataFrame.from_records(records)
 
 
-def _group_record(table: LifeTable, key: tuple[str, str], rows: np.ndarray,
-                  b_lives: Sequence[float], level: float) -> dict:
-    part = table.take_rows(rows)
-    counts = part.summary()
-    record = {"group_by": key[0], "group": key[1]}
-    record.update({k: counts[k] for k in ("units", "lives", "failures", "suspensions", "time_at_risk_days")})
-    estimate, low, high = mtbf_bounds(counts["time_at_risk_days"], counts["failures"], level)
+def _group_record(rows: _Rows, key: tuple[str, str], idx: np.ndarray, b_lives: Sequence[float],
+                  level: float) -> dict:
+    life_key, failed = rows.key[idx], rows.failed[idx]
+    last_of_life = np.r_[life_key[1:] != life_key[:-1], True] if len(idx) else np.zeros(0, bool)
+    time_at_risk = float(np.sum(rows.exit[idx] - rows.entry[idx]))
+    record = {"group_by": key[0], "group": key[1], "units": int(len(np.unique(rows.unit[idx]))),
+              "lives": int(last_of_life.sum()), "failures": int(failed.sum()),
+              "suspensions": int(np.sum(last_of_life & ~failed)), "time_at_risk_days": time_at_risk}
+    estimate, low, high = mtbf_bounds(time_at_risk, record["failures"], level)
     record.update(mtbf_days=estimate, mtbf_low_days=low, mtbf_high_days=high)
-    first = part.frame.iloc[first_failure_rows(part.frame)]
-    entry = first["entry_age"].to_numpy(float)
-    exit_ = first["exit_age"].to_numpy(float)
-    event = first["failed"].to_numpy(bool)
+    first = idx[_first_failure_mask(life_key, failed)]
+    entry, exit_, event = rows.entry[first], rows.exit[first], rows.failed[first]
+    curve = product_limit_survival(entry, exit_, event, level=level)
     for p in b_lives:
         name = f"b{_plain(p)}"
-        estimate, low, high = b_life(entry, exit_, event, p, level)
+        estimate, low, high = _b_life_from(curve, p)
         record.update({f"{name}_days": estimate, f"{name}_low_days": low, f"{name}_high_days": high})
     weibull = fit_weibull(entry, exit_, event, level=level)
     record.update(weibull_shape=weibull["shape"], weibull_shape_low=weibull["shape_low"],
