@@ -47,11 +47,9 @@ from scipy.stats import chi2
 from wearcast import _atomic
 from wearcast._product_limit import age_at_survival, product_limit_survival
 from wearcast._weibull import fit_weibull
-from wearcast.exceptions import ConfigError
-from wearcast.lifetable import LifeTable
+from wearcast.lifetable import FLEET, LifeTable, group_labels
 
 LIFE_STATISTICS_FILE = "life_statistics.csv"
-FLEET = ("fleet", "all")
 DEFAULT_B_LIVES = (10, 50)
 DEFAULT_LEVEL = 0.90
 
@@ -135,16 +133,8 @@ def life_statistics(table: LifeTable, group_by: Sequence[str] = (), *,
     frame = table.frame
     rows = _Rows(frame)
     groups: list[tuple[tuple[str, str], np.ndarray]] = [(FLEET, np.arange(len(frame)))]
-    for col in group_by:
-        if col not in frame.columns:
-            raise ConfigError(
-                f"[fleet] group_by names {col!r}, which is not a column of the life table "
-                f"({', '.join(map(str, frame.columns))}). Remove it or add the column to the export."
-            )
-        values = frame[col].astype(object)
-        labels = np.where(values.isna().to_numpy(), "(missing)", values.astype(str).to_numpy()).astype(str)
-        for level_ in sorted(set(labels)):
-            groups.append(((str(col), str(level_)), np.flatnonzero(labels == level_)))
+    for col, labels in group_labels(frame, group_by):
+        groups += [((col, str(level_)), np.flatnonzero(labels == level_)) for level_ in sorted(set(labels))]
     records = [_group_record(rows, key, rows.subset(positions), b_lives, level) for key, positions in groups]
     return pd.DataFrame.from_records(records)
 

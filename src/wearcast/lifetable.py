@@ -21,7 +21,7 @@ from typing import Iterable, Sequence
 import numpy as np
 import pandas as pd
 
-from wearcast.exceptions import DataError
+from wearcast.exceptions import ConfigError, DataError
 
 #: Columns every life table has, in this order.
 CORE_COLUMNS = ("unit_id", "life", "entry_age", "exit_age", "failed", "mode", "in_service")
@@ -301,3 +301,29 @@ class LifeTable:
     def in_service(self) -> "LifeTable":
         """The open interval of every unit still running at the export date."""
         return self.take_rows(np.flatnonzero(self.frame["in_service"].to_numpy()))
+
+
+#: Label (group_by, group) of the whole fleet in per-group outputs.
+FLEET = ("fleet", "all")
+
+
+def level_labels(values: pd.Series) -> np.ndarray:
+    """A grouping column's values as text labels, ``(missing)`` where empty; shape (n,)."""
+    values = values.astype(object)
+    return np.where(values.isna().to_numpy(), "(missing)", values.astype(str).to_numpy()).astype(str)
+
+
+def group_labels(rows: pd.DataFrame, group_by: Sequence[str]) -> list[tuple[str, np.ndarray]]:
+    """``[(column, labels (n,) str), ...]`` for each grouping column of ``rows``.
+
+    Raises :class:`ConfigError` naming the column when ``rows`` lacks it.
+    """
+    out = []
+    for col in group_by:
+        if col not in rows.columns:
+            raise ConfigError(
+                f"[fleet] group_by names {col!r}, which is not a column of the life table "
+                f"({', '.join(map(str, rows.columns))}). Remove it or add the column to the export."
+            )
+        out.append((str(col), level_labels(rows[col])))
+    return out

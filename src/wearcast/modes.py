@@ -37,7 +37,8 @@ from scipy.stats import chi2_contingency
 from wearcast import _atomic
 from wearcast._poisson_binomial import count_pmf, pmf_quantile
 from wearcast.exceptions import ConfigError
-from wearcast.resample import FLEET, INTERVAL
+from wearcast.lifetable import FLEET, level_labels
+from wearcast.resample import INTERVAL
 
 MODE_FORECAST_FILE = "mode_forecast.csv"
 NOT_RECORDED = "(not recorded)"
@@ -55,10 +56,6 @@ def _check_by(frame: pd.DataFrame, by: str | None) -> None:
             f"[ranking] modes_by names {by!r}, which is not a column of the life table "
             f"({', '.join(map(str, frame.columns))}). Name a register column or covariate, or remove the key."
         )
-
-
-def _labels(values: pd.Series) -> np.ndarray:
-    return np.where(values.isna().to_numpy(), "(missing)", values.astype(str).to_numpy()).astype(str)
 
 
 def mode_shares(table, by: str | None = None, prior_failures: float = 10.0) -> pd.DataFrame:
@@ -81,8 +78,8 @@ def mode_shares(table, by: str | None = None, prior_failures: float = 10.0) -> p
     records = [{"level": ALL_LEVELS, "mode": m, "failures": int(fleet_counts[m]), "share": float(fleet_share[m])}
                for m in order]
     if by is not None:
-        levels = _labels(frame.loc[modes.index, by])
-        for level in sorted(set(_labels(frame[by]))):
+        levels = level_labels(frame.loc[modes.index, by])
+        for level in sorted(set(level_labels(frame[by]))):
             counts = modes[levels == level].value_counts().reindex(order, fill_value=0)
             n = float(counts.sum())
             weight = prior_failures if n + prior_failures > 0 else 1.0
@@ -114,12 +111,12 @@ def mode_forecast(units: pd.DataFrame, horizons_days: Sequence[float], shares: p
     else:
         if by not in units.columns:
             raise ConfigError(f"[ranking] modes_by names {by!r}, which the in-service units do not carry.")
-        levels = _labels(units[by])
+        levels = level_labels(units[by])
         s = table.reindex(levels).to_numpy(float)
         s[np.isnan(s).any(axis=1)] = table.loc[ALL_LEVELS].to_numpy(float)  # a level with no record
     members = [(FLEET, np.arange(len(units)))]
     for col in group_by:
-        labels = _labels(units[col])
+        labels = level_labels(units[col])
         members += [((col, level), np.flatnonzero(labels == level)) for level in sorted(set(labels))]
     records = []
     for (column, level), idx in members:

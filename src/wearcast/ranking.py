@@ -19,7 +19,8 @@ import pandas as pd
 from wearcast import _atomic
 from wearcast._poisson_binomial import EXACT_VARIANCE_LIMIT, count_pmf, pmf_quantile
 from wearcast.exceptions import ConfigError, ModelError
-from wearcast.resample import FLEET, INTERVAL, RefitSummary, current_units, group_labels, risk_ranks
+from wearcast.lifetable import FLEET, group_labels
+from wearcast.resample import INTERVAL, RefitSummary, current_units, risk_ranks
 
 #: Days per year used for ``age_years``.
 DAYS_PER_YEAR = 365.25

@@ -51,13 +51,12 @@ import pandas as pd
 from wearcast import _atomic
 from wearcast._poisson_binomial import count_pmf
 from wearcast.exceptions import ConfigError, DataError, ModelError
+from wearcast.lifetable import FLEET, group_labels
 
 #: Quantiles reported as the interval (5 % and 95 %).
 INTERVAL = (0.05, 0.95)
 #: Upper bound on refit values held in memory while summarising (bytes).
 CHUNK_BYTES = 64 * 2**20
-#: Label of the whole-fleet group.
-FLEET = ("fleet", "all")
 _FORMAT_VERSION = 2  # 2: boosted refits fit the unit draw as case weights
 
 
@@ -129,21 +128,6 @@ def current_units(table) -> tuple[pd.DataFrame, np.ndarray, np.ndarray]:
             "interval may be marked in_service. Check the register for a duplicated unit."
         )
     return rows, ids, rows["exit_age"].to_numpy(dtype=float)
-
-
-def group_labels(rows: pd.DataFrame, group_by: Sequence[str]) -> list[tuple[str, np.ndarray]]:
-    """``[(column, labels (n,) str), ...]`` for each grouping column of the in-service rows."""
-    out = []
-    for col in group_by:
-        if col not in rows.columns:
-            raise ConfigError(
-                f"[fleet] group_by names {col!r}, which is not a column of the life table "
-                f"({', '.join(map(str, rows.columns))}). Remove it or add the column to the export."
-            )
-        values = rows[col].astype(object)
-        labels = np.where(values.isna().to_numpy(), "(missing)", values.astype(str).to_numpy())
-        out.append((str(col), labels.astype(str)))
-    return out
 
 
 def group_members(groupings, n_units: int) -> list[tuple[tuple[str, str], np.ndarray]]:

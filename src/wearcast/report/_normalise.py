@@ -46,7 +46,7 @@ def ranking_horizon(ranked: pd.DataFrame, summary: dict) -> int | None:
 
 
 def is_fleet_row(forecast: pd.DataFrame) -> pd.Series:
-    """True for whole-fleet rows: ``group_by == "fleet"`` (wearcast.resample.FLEET) or,
+    """True for whole-fleet rows: ``group_by == "fleet"`` (wearcast.lifetable.FLEET) or,
     without a ``group_by`` column, a group label such as ``fleet``/``all``."""
     if "group_by" in forecast.columns:
         return forecast["group_by"].fillna("").astype(str).str.lower().isin(("fleet", ""))
