@@ -102,3 +102,5 @@ def test_unknown_modes_by_column_names_the_key():
     table = _table({"packed": ["seal_leak"]}, {"packed": 1})
     with pytest.raises(ConfigError, match=r"modes_by names 'seal_kind'"):
         mode_shares(table, by="seal_kind")
+    with pytest.raises(ConfigError, match=r"modes_by names 'exit_age', which has \d+ distinct values"):
+        mode_shares(_table({"packed": ["seal_leak"] * 60}, {"packed": 1}), by="exit_age")

@@ -50,11 +50,23 @@ def _failure_modes(frame: pd.DataFrame) -> pd.Series:
     return modes.where(modes != "", NOT_RECORDED)
 
 
+#: More levels than this in ``modes_by`` is a mistake (a measurement, not a grouping).
+MAX_MODE_LEVELS = 50
+
+
 def _check_by(frame: pd.DataFrame, by: str | None) -> None:
-    if by is not None and by not in frame.columns:
+    if by is None:
+        return
+    if by not in frame.columns:
         raise ConfigError(
             f"[ranking] modes_by names {by!r}, which is not a column of the life table "
             f"({', '.join(map(str, frame.columns))}). Name a register column or covariate, or remove the key."
+        )
+    n_levels = frame[by].nunique(dropna=True)
+    if n_levels > MAX_MODE_LEVELS:
+        raise ConfigError(
+            f"[ranking] modes_by names {by!r}, which has {n_levels} distinct values; name a grouping column "
+            f"with a few levels (a seal type, a maker; at most {MAX_MODE_LEVELS}), or remove the key."
         )
 
 
