@@ -54,10 +54,13 @@ def test_no_planned_age_without_wear_out_or_without_a_costlier_failure():
 
 
 def test_group_table_and_cost_checks():
-    stats = pd.DataFrame({"group_by": ["fleet", "site", "site"], "group": ["all", "A", "B"],
-                          "weibull_shape": [2.0, 0.9, np.nan], "weibull_scale_days": [2000.0, 1500.0, np.nan]})
+    stats = pd.DataFrame({"group_by": ["fleet", "site", "site", "site"], "group": ["all", "A", "B", "C"],
+                          "weibull_shape": [2.0, 0.9, np.nan, 1.4], "weibull_shape_low": [1.7, 0.7, np.nan, 0.95],
+                          "weibull_scale_days": [2000.0, 1500.0, np.nan, 1800.0]})
     ages = replacement_ages(stats, 1.0, 4.0)
-    fleet, a, b = ages.iloc[0], ages.iloc[1], ages.iloc[2]
+    fleet, a, b, c = ages.iloc[0], ages.iloc[1], ages.iloc[2], ages.iloc[3]
+    assert fleet["reading"] == "a planned replacement at this age pays"
+    assert np.isfinite(c["best_age_days"]) and "bounds include 1" in c["reading"]
     assert fleet["best_age_days"] == pytest.approx(best_replacement_age(2.0, 2000.0, 1.0, 4.0)["age"])
     assert fleet["cost_per_year_run_to_failure"] == pytest.approx(4.0 / (2000 * gamma(1.5)) * 365.25)
     assert np.isnan(a["best_age_days"]) and "does not pay" in a["reading"]

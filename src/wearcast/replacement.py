@@ -60,7 +60,11 @@ def replacement_ages(stats: pd.DataFrame, cost_planned: float, cost_failure: flo
             records.append(record | {"reading": "too few failures for a Weibull fit"})
             continue
         best = best_replacement_age(shape, scale, cost_planned, cost_failure)
-        if np.isfinite(best["age"]):
+        shape_low = float(getattr(row, "weibull_shape_low", np.nan))
+        if np.isfinite(best["age"]) and shape_low <= 1.0:
+            reading = ("pays only if the failure rate truly rises with age: the Weibull shape's bounds include 1, "
+                       "so the records do not show wear-out clearly")
+        elif np.isfinite(best["age"]):
             reading = "a planned replacement at this age pays"
         elif shape <= 1.0:
             reading = "failure rate not rising with age (Weibull shape <= 1): planned replacement does not pay"

@@ -130,5 +130,7 @@ def life_lines(summary: dict) -> list[str]:
             low, high = summary["fleet_replacement_age_low_days"], summary["fleet_replacement_age_high_days"]
             lines.append(f"fleet planned replacement: best at {age:,.0f} days = {age / 365.25:.1f} years "
                          f"(within 5 % of the best cost from {low:,.0f} to {high:,.0f} days), saving "
-                         f"{summary['fleet_replacement_saving']:.0%} of the cost of replacing only at failure")
+                         f"{summary['fleet_replacement_saving']:.0%} of the cost of replacing only at failure"
+                         + (f"; {summary['fleet_replacement_reading']}"
+                            if "bounds include 1" in summary["fleet_replacement_reading"] else ""))
     return lines

@@ -1,4 +1,5 @@
-"""Tables of the report that read fleet-level files: life statistics and failures by mode."""
+"""Tables of the report that read fleet-level files: life statistics, planned replacement ages
+and failures by mode."""
 
 from __future__ import annotations
 
@@ -125,9 +126,10 @@ def replacement_table(ages: pd.DataFrame | None) -> list[str]:
     def age_cell(row):
         if h.is_missing(row.get("best_age_days")):
             return h.esc(row.get("reading", "none"))
+        mark = " *" if _unclear(row) else ""
         return (f'{h.number(row["best_age_days"], h.fmt_years, "best_age_days")} <span class="muted">'
                 f'({h.number(row["age_low_days"], h.fmt_years, "age_low_days")}–'
-                f'{h.number(row["age_high_days"], h.fmt_years, "age_high_days")})</span>')
+                f'{h.number(row["age_high_days"], h.fmt_years, "age_high_days")}){mark}</span>')
 
     columns = [h.Column("Group", "label", numeric=False),
                h.Column("Weibull β", "weibull_shape", lambda v: h.fmt_number(v, 2)),
@@ -140,4 +142,11 @@ def replacement_table(ages: pd.DataFrame | None) -> list[str]:
                 "fit above and the two costs in the config (age replacement: Barlow and Proschan 1965). It is a "
                 "fleet-average policy: it ignores each unit's condition and readings (the ranked list has those) "
                 "and consequences a cost cannot carry, so it supports, and never replaces, inspections, "
-                "manufacturer instructions, local codes and licensed engineering judgement.")]
+                "manufacturer instructions, local codes and licensed engineering judgement."
+                + (" * The Weibull shape's bounds include 1 for this group: the records do not show wear-out "
+                   "clearly, and a planned replacement pays only if the failure rate truly rises with age."
+                   if any(_unclear(row) for _, row in frame.iterrows()) else ""))]
+
+
+def _unclear(row) -> bool:
+    return "bounds include 1" in str(row.get("reading", ""))
