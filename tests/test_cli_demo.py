@@ -45,6 +45,11 @@ def test_run_demo_returns_paths_and_one_summary_per_stage(tmp_path):
     assert result["stages"]["rank"]["mode_forecast_path"].endswith("mode_forecast.csv")
     stats = pd.read_csv(tmp_path / "life_statistics.csv")
     assert stats["failures"].iloc[0] == check["failures"]
+    # the demo config sets [costs]: units at or past the fleet's best planned replacement age are flagged
+    ranked = pd.read_csv(tmp_path / "ranked_units.csv")
+    best = pd.read_csv(tmp_path / "replacement_ages.csv")["best_age_days"].iloc[0]
+    assert (ranked["past_planned_replacement_age"] == (ranked["age_days"] >= check["fleet_best_replacement_age_days"])).all()
+    assert abs(check["fleet_best_replacement_age_days"] - best) <= 0.5
 
 
 def test_demo_reports_an_unwritable_output_folder(tmp_path):

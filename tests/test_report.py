@@ -539,11 +539,13 @@ def test_replacement_table_shows_the_ages_and_the_caution(tmp_path):
                           "weibull_shape": [2.1, 0.8, 1.3], "weibull_shape_low": [1.8, 0.6, 0.9],
                           "weibull_scale_days": [7500.0, 5000.0, 6000.0]})
     ages = replacement_ages(stats, 1.0, 5.0)
-    inputs = ReportInputs(title="Ages", as_of="2026-11-30", life_table=life_table(), replacement_ages=ages)
+    inputs = ReportInputs(title="Ages", as_of="2026-11-30", life_table=life_table(), replacement_ages=ages,
+                          summary={"units_past_planned_replacement_age": 37, "planned_replacement_age_days": 3652.5})
     parsed = _parse(build_report(inputs, tmp_path / "r")["report"].read_text(encoding="utf-8"))
     shown = [float(n["data-value"]) for n in parsed.numbers if n["data-field"] == "best_age_days"]
     assert shown == pytest.approx([ages["best_age_days"].iloc[0], ages["best_age_days"].iloc[2]])
     text = " ".join(parsed.text)
     assert "* The Weibull shape's bounds include 1 for this group" in text
+    assert "37 units in service are already at or past the whole fleet's best age (10.0 years" in text
     assert "planned replacement does not pay" in text
     assert "never replaces, inspections, manufacturer instructions, local codes and licensed engineering" in text

@@ -115,6 +115,13 @@ def rank_stage(config: Config, out_dir: Path, state: JobState) -> dict:
     modes = _mode_forecast(table, state.ranked.ranked_units, section, config.fleet.group_by)
     if modes is not None:
         state.ranked.summary["modes"] = modes[1]
+    best_age = state.summaries.get("check", {}).get("fleet_best_replacement_age_days")
+    if best_age is not None:
+        # with [costs]: which units are already older than the fleet's best planned replacement age
+        past = state.ranked.ranked_units["age_days"].to_numpy(float) >= float(best_age)
+        state.ranked.ranked_units["past_planned_replacement_age"] = past
+        state.ranked.summary["planned_replacement_age_days"] = float(best_age)
+        state.ranked.summary["units_past_planned_replacement_age"] = int(past.sum())
     paths = write_ranking(state.ranked, out_dir)
     if modes is not None:
         from wearcast.modes import write_mode_forecast

@@ -115,7 +115,7 @@ def mode_table(forecast: pd.DataFrame | None, summary: dict) -> list[str]:
             h.note(note + (f" {age}" if age else ""))]
 
 
-def replacement_table(ages: pd.DataFrame | None) -> list[str]:
+def replacement_table(ages: pd.DataFrame | None, summary: dict | None = None) -> list[str]:
     """Best planned replacement age per group (replacement_ages.csv), with the cost model's limits."""
     if ages is None or ages.empty or "best_age_days" not in ages.columns:
         return []
@@ -145,7 +145,16 @@ def replacement_table(ages: pd.DataFrame | None) -> list[str]:
                 "manufacturer instructions, local codes and licensed engineering judgement."
                 + (" * The Weibull shape's bounds include 1 for this group: the records do not show wear-out "
                    "clearly, and a planned replacement pays only if the failure rate truly rises with age."
-                   if any(_unclear(row) for _, row in frame.iterrows()) else ""))]
+                   if any(_unclear(row) for _, row in frame.iterrows()) else "")
+                + _past_sentence(summary or {}))]
+
+
+def _past_sentence(summary: dict) -> str:
+    past, age = summary.get("units_past_planned_replacement_age"), summary.get("planned_replacement_age_days")
+    if past is None or age is None:
+        return ""
+    return (f" {past:,} units in service are already at or past the whole fleet's best age "
+            f"({float(age) / 365.25:.1f} years; column past_planned_replacement_age of ranked_units.csv).")
 
 
 def _unclear(row) -> bool:

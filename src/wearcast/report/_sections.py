@@ -315,7 +315,7 @@ def fleet(inputs) -> Section:
         ("unit-years observed", h.number(facts["time_at_risk_days"] / 365.25, lambda v: f"{v:,.0f}", "unit_years")),
     ], caption="What the curves are built from."))
     parts.extend(_fleet_tables.life_statistics_table(inputs, table))
-    parts.extend(_fleet_tables.replacement_table(inputs.replacement_ages))
+    parts.extend(_fleet_tables.replacement_table(inputs.replacement_ages, inputs.summary))
     return h.section("fleet", "Fleet reliability", "".join(parts),
                      lead="How the fleet as a whole has survived so far, read from the records alone."), figures
 
