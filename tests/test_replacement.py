@@ -45,7 +45,10 @@ def test_best_age_meets_the_first_order_condition(shape, cp, cf):
 
 
 def test_no_planned_age_without_wear_out_or_without_a_costlier_failure():
-    for shape, cp, cf in ((1.0, 1.0, 5.0), (0.8, 1.0, 5.0), (2.5, 5.0, 5.0), (2.5, 6.0, 5.0)):
+    # (1.2, 1, 1.5) and (1.2, 1, 2): a rate rising slowly and a failure costing little more than a plan;
+    # the cost per day flattens out and its minimum lies beyond 20 scale lengths, where it saves next to nothing
+    for shape, cp, cf in ((1.0, 1.0, 5.0), (0.8, 1.0, 5.0), (2.5, 5.0, 5.0), (2.5, 6.0, 5.0), (1.2, 1.0, 1.5),
+                          (1.2, 1.0, 2.0)):
         best = best_replacement_age(shape, 100.0, cp, cf)
         assert np.isnan(best["age"]) and best["saving"] == 0.0
         assert best["cost_rate"] == pytest.approx(run_to_failure_rate(shape, 100.0, cf))

@@ -63,11 +63,11 @@ def best_replacement_age(shape: float, scale: float, cost_planned: float, cost_f
     grid = np.linspace(lo, hi, 400)
     values = np.array([f(x) for x in grid])
     i = int(np.argmin(values))
-    if i == len(grid) - 1:
-        return out  # keeps falling toward old ages: no finite best age worth planning
-    found = minimize_scalar(f, bracket=(grid[max(i - 1, 0)], grid[i], grid[min(i + 1, len(grid) - 1)]),
-                            tol=1e-12) if 0 < i else minimize_scalar(f, bounds=(lo, grid[1]), method="bounded")
-    best_x = float(found.x)
+    if i == len(grid) - 1 or values[i] >= rtf * (1.0 - 1e-9):
+        return out  # keeps falling toward old ages, or never beats running to failure
+    found = minimize_scalar(f, bounds=(grid[max(i - 1, 0)], grid[min(i + 1, len(grid) - 1)]), method="bounded",
+                            options={"xatol": 1e-10})
+    best_x = float(found.x) if f(float(found.x)) <= values[i] else float(grid[i])
     best = f(best_x)
     if not best < rtf:
         return out
