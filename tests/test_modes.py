@@ -32,7 +32,7 @@ def test_fleet_mix_and_shrunk_level_mix_by_hand():
     table = _table({"packed": ["seal_leak"] * 6 + ["bearing"] * 2, "mech": ["bearing"] * 2 + [""]},
                    {"packed": 1, "mech": 1, "new": 1})
     shares = mode_shares(table, by="seal", prior_failures=10.0)
-    fleet = shares[shares["level"] == "(all)"].set_index("mode")
+    fleet = shares[shares["level"].isna()].set_index("mode")
     # fleet: seal_leak 6, bearing 4, not recorded 1 of 11 failures, most frequent first
     assert fleet.index.tolist() == ["seal_leak", "bearing", NOT_RECORDED]
     assert fleet["share"].tolist() == pytest.approx([6 / 11, 4 / 11, 1 / 11])
@@ -42,7 +42,7 @@ def test_fleet_mix_and_shrunk_level_mix_by_hand():
     assert packed["bearing"] == pytest.approx((2 + 10 * 4 / 11) / 18)
     new = shares[shares["level"] == "new"].set_index("mode")["share"]  # no failures: the fleet mix
     assert new.tolist() == pytest.approx(fleet["share"].tolist())
-    for level, part in shares.groupby("level"):
+    for level, part in shares.fillna({"level": "fleet"}).groupby("level"):
         assert part["share"].sum() == pytest.approx(1.0), level
     # without shrinkage the level keeps its own mix
     raw = mode_shares(table, by="seal", prior_failures=0.0)
@@ -55,7 +55,7 @@ def test_forecast_splits_the_expected_count_and_keeps_poisson_binomial_intervals
     units = pd.DataFrame({"unit_id": [f"u{i}" for i in range(n)],
                           "site": rng.choice(["north", "south"], n), "seal": rng.choice(["packed", "mech"], n),
                           "p_fail_90d": rng.uniform(0, 0.2, n), "p_fail_365d": rng.uniform(0.1, 0.6, n)})
-    shares = pd.DataFrame({"level": ["(all)"] * 2 + ["packed"] * 2 + ["mech"] * 2,
+    shares = pd.DataFrame({"level": [None] * 2 + ["packed"] * 2 + ["mech"] * 2,
                            "mode": ["seal_leak", "bearing"] * 3, "failures": [0] * 6,
                            "share": [0.5, 0.5, 0.8, 0.2, 0.3, 0.7]})
     out = mode_forecast(units, [90, 365], shares, by="seal", group_by=["site"])
@@ -77,7 +77,7 @@ def test_forecast_splits_the_expected_count_and_keeps_poisson_binomial_intervals
 
 def test_one_mode_reproduces_the_fleet_count():
     units = pd.DataFrame({"p_fail_30d": [0.1, 0.2, 0.3, 0.05]})
-    shares = pd.DataFrame({"level": ["(all)"], "mode": ["wear"], "failures": [3], "share": [1.0]})
+    shares = pd.DataFrame({"level": [None], "mode": ["wear"], "failures": [3], "share": [1.0]})
     out = mode_forecast(units, [30], shares)
     assert out["expected_failures"].item() == pytest.approx(0.65)
     assert (out["chance_only_low"].item(), out["chance_only_high"].item()) == \
@@ -104,3 +104,25 @@ def test_unknown_modes_by_column_names_the_key():
         mode_shares(table, by="seal_kind")
     with pytest.raises(ConfigError, match=r"modes_by names 'exit_age', which has \d+ distinct values"):
         mode_shares(_table({"packed": ["seal_leak"] * 60}, {"packed": 1}), by="exit_age")
+
+
+def test_level_labels_cannot_clash_with_the_fleet_mix():
+    # a seal type literally called "(all)" is just a level; the fleet's mix is kept apart
+    table = _table({"(all)": ["seal_leak"] * 3 + ["bearing"], "mech": ["bearing"] * 2}, {"(all)": 2, "mech": 1})
+    shares = mode_shares(table, by="seal", prior_failures=0.0)
+    level = shares[shares["level"] == "(all)"].set_index("mode")["share"]
+    assert (level["seal_leak"], level["bearing"]) == pytest.approx((0.75, 0.25))
+    units = pd.DataFrame({"seal": ["(all)", "mech"], "p_fail_90d": [0.4, 0.2]})
+    out = mode_forecast(units, [90], shares, by="seal").set_index("mode")
+    assert out.loc["seal_leak", "expected_failures"] == pytest.approx(0.4 * 0.75)
+    from wearcast.lifetable import group_labels
+
+    with pytest.raises(ConfigError, match="kept for the whole-fleet rows"):
+        group_labels(pd.DataFrame({"fleet": ["all"]}), ["fleet"])
+
+
+def test_failures_at_one_age_cannot_be_banded():
+    rows = [{"unit_id": f"u{i}", "entry_age": 0.0, "exit_age": 365.0, "failed": True,
+             "mode": "wear" if i % 2 else "seal"} for i in range(80)]
+    check = mode_mix_by_age(LifeTable.from_frame(pd.DataFrame(rows)))
+    assert check["p_value"] is None and check["bands"] == 1 and "Too few" in check["statement"]

@@ -45,7 +45,7 @@ from wearcast.io import load_export
 from wearcast.lifetable import LifeTable
 from wearcast.metrics import harrell_c
 from wearcast.models.base import SurvivalModel
-from wearcast.modes import NOT_RECORDED, mode_forecast, mode_shares
+from wearcast.modes import clean_modes, forecast_for_units
 
 BASELINE = "cox"
 
@@ -136,8 +136,7 @@ def window_outcomes(at_origin: LifeTable, later: LifeTable, horizon_days: float)
     out = keys.drop(columns="_pos")
     out["failed"] = failed
     out["days_observed"] = seen
-    modes = keys["_pos"].map(fail_mode).fillna("").astype(str).str.strip().to_numpy()
-    out["mode"] = np.where(failed, np.where(modes == "", NOT_RECORDED, modes), "")
+    out["mode"] = np.where(failed, clean_modes(keys["_pos"].map(fail_mode)).to_numpy(), "")
     return out
 
 
@@ -274,13 +273,10 @@ def mode_check(fit_table: LifeTable, p: np.ndarray, outcome: pd.DataFrame, horiz
     One dict per mode (modes of the fit-time history first, then any mode seen only in the
     window, with nothing expected); empty when the history records no mode.
     """
-    shares = mode_shares(fit_table, by=modes_by, prior_failures=prior_failures)
-    if shares.empty or set(shares["mode"]) == {NOT_RECORDED}:
-        return []
     units = pd.DataFrame({f"p_fail_{float(horizon_days):g}d": np.asarray(p, float)})
-    if modes_by is not None:
-        units[modes_by] = fit_table.in_service().frame[modes_by].to_numpy()
-    forecast = mode_forecast(units, [horizon_days], shares, by=modes_by)
+    forecast = forecast_for_units(fit_table, units, [horizon_days], modes_by, prior_failures)
+    if forecast is None:
+        return []
     observed = outcome.loc[outcome["failed"].to_numpy(bool), "mode"].value_counts()
     out = []
     for row in forecast.itertuples(index=False):

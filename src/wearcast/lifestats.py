@@ -47,7 +47,7 @@ from scipy.stats import chi2
 from wearcast import _atomic
 from wearcast._product_limit import age_at_survival, product_limit_survival
 from wearcast._weibull import fit_weibull
-from wearcast.lifetable import FLEET, LifeTable, group_labels
+from wearcast.lifetable import LifeTable, group_labels, group_members
 
 LIFE_STATISTICS_FILE = "life_statistics.csv"
 DEFAULT_B_LIVES = (10, 50)
@@ -132,9 +132,7 @@ def life_statistics(table: LifeTable, group_by: Sequence[str] = (), *,
     """
     frame = table.frame
     rows = _Rows(frame)
-    groups: list[tuple[tuple[str, str], np.ndarray]] = [(FLEET, np.arange(len(frame)))]
-    for col, labels in group_labels(frame, group_by):
-        groups += [((col, str(level_)), np.flatnonzero(labels == level_)) for level_ in sorted(set(labels))]
+    groups = group_members(group_labels(frame, group_by), len(frame))
     records = [_group_record(rows, key, rows.subset(positions), b_lives, level) for key, positions in groups]
     return pd.DataFrame.from_records(records)
 
@@ -195,10 +193,15 @@ def _plain(p: float) -> str:
 def write_life_statistics(stats: pd.DataFrame, out_dir: str | Path) -> Path:
     """Write ``life_statistics.csv`` atomically; return its path. Days as whole numbers
     (empty where there is no value)."""
-    out = stats.copy()
+    return _atomic.write_csv(Path(out_dir) / LIFE_STATISTICS_FILE, whole_days(stats))
+
+
+def whole_days(frame: pd.DataFrame) -> pd.DataFrame:
+    """A copy with every ``*_days`` column rounded to whole days (nullable integers: empty stays empty)."""
+    out = frame.copy()
     for col in [c for c in out.columns if c.endswith("_days")]:
         out[col] = out[col].astype(float).round(0).astype("Int64")
-    return _atomic.write_csv(Path(out_dir) / LIFE_STATISTICS_FILE, out)
+    return out
 
 
 __all__ = ["LIFE_STATISTICS_FILE", "life_statistics", "write_life_statistics", "fleet_headline", "mtbf_bounds",

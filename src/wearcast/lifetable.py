@@ -320,6 +320,11 @@ def group_labels(rows: pd.DataFrame, group_by: Sequence[str]) -> list[tuple[str,
     """
     out = []
     for col in group_by:
+        if col == FLEET[0]:
+            raise ConfigError(
+                f"[fleet] group_by names a column {col!r}; that name is kept for the whole-fleet rows of the "
+                "outputs. Rename the column in the export (or map it in [columns])."
+            )
         if col not in rows.columns:
             raise ConfigError(
                 f"[fleet] group_by names {col!r}, which is not a column of the life table "
@@ -327,3 +332,13 @@ def group_labels(rows: pd.DataFrame, group_by: Sequence[str]) -> list[tuple[str,
             )
         out.append((str(col), level_labels(rows[col])))
     return out
+
+
+def group_members(groupings, n_units: int) -> list[tuple[tuple[str, str], np.ndarray]]:
+    """``[((column, level), positions), ...]`` from :func:`group_labels`: the whole fleet
+    first, then each column's levels sorted."""
+    members = [(FLEET, np.arange(n_units))]
+    for col, labels in groupings:
+        for level in sorted(set(labels)):
+            members.append(((col, str(level)), np.flatnonzero(labels == level)))
+    return members

@@ -37,24 +37,31 @@ from scipy.stats import chi2_contingency
 from wearcast import _atomic
 from wearcast._poisson_binomial import count_pmf, pmf_quantile
 from wearcast.exceptions import ConfigError
-from wearcast.lifetable import FLEET, level_labels
+from wearcast.lifetable import group_labels, group_members, level_labels
+from wearcast.ranking import plain_number
 from wearcast.resample import INTERVAL
 
 MODE_FORECAST_FILE = "mode_forecast.csv"
 NOT_RECORDED = "(not recorded)"
-ALL_LEVELS = "(all)"
+#: More levels than this in ``modes_by`` is a mistake (a measurement, not a grouping).
+MAX_MODE_LEVELS = 50
+_SHARE_COLUMNS = ["level", "mode", "failures", "share"]
 
 
-def _failure_modes(frame: pd.DataFrame) -> pd.Series:
-    modes = frame.loc[frame["failed"].astype(bool), "mode"].fillna("").astype(str).str.strip()
+def clean_modes(values: pd.Series) -> pd.Series:
+    """Failure-mode text as recorded, ``(not recorded)`` where blank."""
+    modes = values.fillna("").astype(str).str.strip()
     return modes.where(modes != "", NOT_RECORDED)
 
 
-#: More levels than this in ``modes_by`` is a mistake (a measurement, not a grouping).
-MAX_MODE_LEVELS = 50
+def _failure_modes(frame: pd.DataFrame) -> pd.Series:
+    return clean_modes(frame.loc[frame["failed"].astype(bool), "mode"])
 
 
-def _check_by(frame: pd.DataFrame, by: str | None) -> None:
+def check_modes_by(frame: pd.DataFrame, by: str | None, prior_failures: float = 10.0) -> None:
+    """Raise :class:`ConfigError` when ``[ranking] modes_by`` / ``mode_prior_failures`` cannot work."""
+    if prior_failures < 0:
+        raise ConfigError(f"[ranking] mode_prior_failures must be 0 or more; got {prior_failures}.")
     if by is None:
         return
     if by not in frame.columns:
@@ -71,23 +78,21 @@ def _check_by(frame: pd.DataFrame, by: str | None) -> None:
 
 
 def mode_shares(table, by: str | None = None, prior_failures: float = 10.0) -> pd.DataFrame:
-    """The mode mix per level of ``by`` (one level, ``(all)``, when ``by`` is None).
+    """The fleet's mode mix, then the mix per level of ``by``.
 
-    Columns: ``level``, ``mode``, ``failures`` (recorded), ``share``. The
-    fleet mix comes first as level ``(all)``; modes are ordered by their fleet
+    Columns: ``level`` (empty, None, on the fleet's rows), ``mode``,
+    ``failures`` (recorded), ``share``. Modes are ordered by their fleet
     count, most frequent first. Empty when the table has no failures.
     """
-    if prior_failures < 0:
-        raise ConfigError(f"[ranking] mode_prior_failures must be 0 or more; got {prior_failures}.")
     frame = table.frame
-    _check_by(frame, by)
+    check_modes_by(frame, by, prior_failures)
     modes = _failure_modes(frame)
     if modes.empty:
-        return pd.DataFrame(columns=["level", "mode", "failures", "share"])
+        return pd.DataFrame(columns=_SHARE_COLUMNS)
     fleet_counts = modes.value_counts()
     order = sorted(fleet_counts.index, key=lambda m: (-fleet_counts[m], m))
     fleet_share = (fleet_counts / fleet_counts.sum()).reindex(order)
-    records = [{"level": ALL_LEVELS, "mode": m, "failures": int(fleet_counts[m]), "share": float(fleet_share[m])}
+    records = [{"level": None, "mode": m, "failures": int(fleet_counts[m]), "share": float(fleet_share[m])}
                for m in order]
     if by is not None:
         levels = level_labels(frame.loc[modes.index, by])
@@ -98,7 +103,7 @@ def mode_shares(table, by: str | None = None, prior_failures: float = 10.0) -> p
             shares = (counts + weight * fleet_share) / (n + weight)
             records += [{"level": level, "mode": m, "failures": int(counts[m]), "share": float(shares[m])}
                         for m in order]
-    return pd.DataFrame.from_records(records, columns=["level", "mode", "failures", "share"])
+    return pd.DataFrame.from_records(records, columns=_SHARE_COLUMNS)
 
 
 def mode_forecast(units: pd.DataFrame, horizons_days: Sequence[float], shares: pd.DataFrame,
@@ -116,20 +121,18 @@ def mode_forecast(units: pd.DataFrame, horizons_days: Sequence[float], shares: p
                "chance_only_high", "mode_share"]
     if shares.empty or units.empty:
         return pd.DataFrame(columns=columns)
-    order = list(shares.loc[shares["level"] == ALL_LEVELS, "mode"])
-    table = shares.pivot(index="level", columns="mode", values="share").reindex(columns=order)
+    is_fleet = shares["level"].isna()
+    order = list(shares.loc[is_fleet, "mode"])
+    fleet_mix = shares.loc[is_fleet].set_index("mode")["share"].reindex(order).to_numpy(float)
     if by is None:
-        s = np.tile(table.loc[ALL_LEVELS].to_numpy(float), (len(units), 1))
+        s = np.tile(fleet_mix, (len(units), 1))
     else:
         if by not in units.columns:
             raise ConfigError(f"[ranking] modes_by names {by!r}, which the in-service units do not carry.")
-        levels = level_labels(units[by])
-        s = table.reindex(levels).to_numpy(float)
-        s[np.isnan(s).any(axis=1)] = table.loc[ALL_LEVELS].to_numpy(float)  # a level with no record
-    members = [(FLEET, np.arange(len(units)))]
-    for col in group_by:
-        labels = level_labels(units[col])
-        members += [((col, level), np.flatnonzero(labels == level)) for level in sorted(set(labels))]
+        by_level = shares.loc[~is_fleet].pivot(index="level", columns="mode", values="share").reindex(columns=order)
+        s = by_level.reindex(level_labels(units[by])).to_numpy(float)
+        s[np.isnan(s).any(axis=1)] = fleet_mix  # a level with no record
+    members = group_members(group_labels(units, group_by), len(units))
     records = []
     for (column, level), idx in members:
         for h in horizons_days:
@@ -139,29 +142,50 @@ def mode_forecast(units: pd.DataFrame, horizons_days: Sequence[float], shares: p
                 pm = p * s[idx, k]
                 low, high = pmf_quantile(count_pmf(pm), INTERVAL)
                 expected = float(pm.sum())
-                records.append({"group_by": column, "group": level, "horizon_days": _plain(h), "mode": mode,
+                records.append({"group_by": column, "group": level, "horizon_days": plain_number(h), "mode": mode,
                                 "expected_failures": expected, "chance_only_low": int(low),
                                 "chance_only_high": int(high),
                                 "mode_share": expected / total if total > 0 else float("nan")})
     return pd.DataFrame.from_records(records, columns=columns)
 
 
+def forecast_for_units(table, units: pd.DataFrame, horizons_days: Sequence[float], by: str | None = None,
+                       prior_failures: float = 10.0, group_by: Sequence[str] = ()) -> pd.DataFrame | None:
+    """The forecast by mode for ``units`` (in the order of ``table.in_service()``, with their
+    ``p_fail_<h>d``), or None when the history records no failure mode. Adds the ``by`` column
+    from the units' open rows when ``units`` lacks it."""
+    shares = mode_shares(table, by=by, prior_failures=prior_failures)
+    if shares.empty or set(shares["mode"]) == {NOT_RECORDED}:
+        return None
+    if by is not None and by not in units.columns:
+        open_rows = table.in_service().frame
+        by_unit = pd.Series(open_rows[by].to_numpy(), index=open_rows["unit_id"].astype(str).to_numpy())
+        units = units.assign(**{by: by_unit.reindex(units["unit_id"].astype(str)).to_numpy()}) \
+            if "unit_id" in units.columns else units.assign(**{by: open_rows[by].to_numpy()})
+    return mode_forecast(units, horizons_days, shares, by=by, group_by=group_by)
+
+
 def mode_mix_by_age(table, n_bands: int = 3) -> dict:
     """Does the mode mix shift with age? Chi-square test of mode against age band of the failure.
 
-    Failures are cut into ``n_bands`` equal-count age bands (fewer when there
-    are few failures). Returns ``{"p_value", "bands", "failures", "statement"}``;
-    ``p_value`` is None when there are too few failures or modes to test.
+    Failures are cut into up to ``n_bands`` equal-count age bands (fewer with
+    fewer than 20 failures a band, or when many failures share an age).
+    Returns ``{"p_value", "bands", "failures", "statement"}``; ``p_value`` is
+    None when fewer than two bands or two modes can be formed.
     """
     frame = table.frame
     modes = _failure_modes(frame)
     ages = frame.loc[modes.index, "exit_age"].to_numpy(float)
-    bands = min(n_bands, max(len(modes) // 20, 1))
+    wanted = min(n_bands, max(len(modes) // 20, 1))
+    band = np.zeros(len(ages), int)
+    if wanted >= 2:
+        edges = np.unique(np.quantile(ages, np.linspace(0, 1, wanted + 1)[1:-1]))
+        band = np.searchsorted(edges, ages, side="right")
+    bands = len(np.unique(band))
     if modes.nunique() < 2 or bands < 2:
-        return {"p_value": None, "bands": bands, "failures": int(len(modes)),
-                "statement": "Too few recorded failures to check whether the mode mix changes with age."}
-    edges = np.quantile(ages, np.linspace(0, 1, bands + 1)[1:-1])
-    band = np.searchsorted(edges, ages, side="right")
+        return {"p_value": None, "bands": int(bands), "failures": int(len(modes)),
+                "statement": "Too few recorded failures (or failure ages) to check whether the mode mix "
+                             "changes with age."}
     crosstab = pd.crosstab(band, modes.to_numpy())
     p_value = float(chi2_contingency(crosstab.to_numpy())[1])
     if p_value < 0.01:
@@ -176,14 +200,10 @@ def mode_mix_by_age(table, n_bands: int = 3) -> dict:
     return {"p_value": p_value, "bands": int(bands), "failures": int(len(modes)), "statement": statement}
 
 
-def _plain(h: float):
-    return int(h) if float(h).is_integer() else float(h)
-
-
 def write_mode_forecast(frame: pd.DataFrame, out_dir: str | Path) -> Path:
     """Write ``mode_forecast.csv`` atomically; return its path."""
     return _atomic.write_csv(Path(out_dir) / MODE_FORECAST_FILE, frame)
 
 
-__all__ = ["MODE_FORECAST_FILE", "NOT_RECORDED", "mode_shares", "mode_forecast", "mode_mix_by_age",
-           "write_mode_forecast"]
+__all__ = ["MODE_FORECAST_FILE", "NOT_RECORDED", "check_modes_by", "clean_modes", "mode_shares", "mode_forecast",
+           "forecast_for_units", "mode_mix_by_age", "write_mode_forecast"]

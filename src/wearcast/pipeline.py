@@ -132,20 +132,12 @@ def rank_stage(config: Config, out_dir: Path, state: JobState) -> dict:
 
 def _mode_forecast(table, ranked_units, section, group_by):
     """(mode_forecast frame, summary entry), or None when no failure has a recorded mode."""
-    import pandas as pd
+    from wearcast.modes import forecast_for_units, mode_mix_by_age
 
-    from wearcast.modes import NOT_RECORDED, mode_forecast, mode_mix_by_age, mode_shares
-    from wearcast.resample import current_units
-
-    shares = mode_shares(table, by=section.modes_by, prior_failures=section.mode_prior_failures)
-    if shares.empty or set(shares["mode"]) == {NOT_RECORDED}:
+    frame = forecast_for_units(table, ranked_units, section.horizons_days, section.modes_by,
+                               section.mode_prior_failures, group_by)
+    if frame is None:
         return None
-    units = ranked_units
-    if section.modes_by is not None and section.modes_by not in units.columns:
-        rows, ids, _ = current_units(table)
-        by_unit = pd.Series(rows[section.modes_by].to_numpy(), index=ids)
-        units = units.assign(**{section.modes_by: by_unit.reindex(units["unit_id"].astype(str)).to_numpy()})
-    frame = mode_forecast(units, section.horizons_days, shares, by=section.modes_by, group_by=group_by)
     mix = mode_mix_by_age(table)
     return frame, {"modes_by": section.modes_by, "mode_prior_failures": section.mode_prior_failures,
                    "mix_by_age_p_value": mix["p_value"], "mix_by_age": mix["statement"]}

@@ -19,7 +19,7 @@ import pandas as pd
 from wearcast import _atomic
 from wearcast._poisson_binomial import EXACT_VARIANCE_LIMIT, count_pmf, pmf_quantile
 from wearcast.exceptions import ConfigError, ModelError
-from wearcast.lifetable import FLEET, group_labels
+from wearcast.lifetable import FLEET, group_labels, group_members
 from wearcast.resample import INTERVAL, RefitSummary, current_units, risk_ranks
 
 #: Days per year used for ``age_years``.
@@ -198,16 +198,13 @@ def fleet_forecast(p: np.ndarray, groupings, horizons, refits: RefitSummary | No
     refits' mixture of Poisson-binomial counts (``refits.count_pmf``). Model-only
     interval: 5-95 % of the refits' expected counts.
     """
-    members = [(FLEET, np.arange(len(p)))]
-    for col, labels in groupings:
-        for level in sorted(set(labels)):
-            members.append(((col, str(level)), np.flatnonzero(labels == level)))
+    members = group_members(groupings, len(p))
     records = []
     for g, ((column, level), idx) in enumerate(members):
         for j, h in enumerate(horizons):
             pg = p[idx, j]
             chance_low, chance_high = pmf_quantile(count_pmf(pg), INTERVAL)
-            record = {"group_by": column, "group": level, "horizon_days": _plain_number(h),
+            record = {"group_by": column, "group": level, "horizon_days": plain_number(h),
                       "units": len(idx), "expected_failures": float(pg.sum()),
                       "chance_only_low": int(chance_low), "chance_only_high": int(chance_high)}
             if refits is None:
@@ -225,7 +222,8 @@ def fleet_forecast(p: np.ndarray, groupings, horizons, refits: RefitSummary | No
     return pd.DataFrame.from_records(records, columns=columns)
 
 
-def _plain_number(h: float):
+def plain_number(h: float):
+    """A horizon as written in outputs: 90 for 90.0, 0.5 stays 0.5."""
     return int(h) if float(h).is_integer() else float(h)
 
 
@@ -235,13 +233,13 @@ def _round(x, digits: int = 6):
 
 def _summary(table, model, refits, horizons, rank_h, top_k, stable_share, units, forecast, drivers_note):
     fleet = forecast[forecast["group_by"] == FLEET[0]]
-    by_h = {str(_plain_number(h)): row for h, row in zip(horizons, fleet.itertuples(index=False))}
+    by_h = {str(plain_number(h)): row for h, row in zip(horizons, fleet.itertuples(index=False))}
     stable_col = f"top{top_k}_stable"
     return {
         "as_of": None if table.as_of is None else table.as_of.date().isoformat(),
         "model": getattr(model, "name", type(model).__name__),
-        "horizons_days": [_plain_number(h) for h in horizons],
-        "rank_horizon_days": _plain_number(rank_h),
+        "horizons_days": [plain_number(h) for h in horizons],
+        "rank_horizon_days": plain_number(rank_h),
         "top_k": int(top_k),
         "stable_share": float(stable_share),
         "interval_quantiles": list(INTERVAL),

@@ -24,6 +24,7 @@ import pandas as pd
 from wearcast import _atomic
 from wearcast._age_replacement import best_replacement_age
 from wearcast.exceptions import ConfigError
+from wearcast.lifestats import whole_days
 
 REPLACEMENT_FILE = "replacement_ages.csv"
 COLUMNS = ["group_by", "group", "weibull_shape", "weibull_scale_days", "best_age_days", "age_low_days",
@@ -82,10 +83,7 @@ def replacement_ages(stats: pd.DataFrame, cost_planned: float, cost_failure: flo
 
 def write_replacement_ages(frame: pd.DataFrame, out_dir: str | Path) -> Path:
     """Write ``replacement_ages.csv`` atomically (ages as whole days); return its path."""
-    out = frame.copy()
-    for col in [c for c in out.columns if c.endswith("_days")]:
-        out[col] = out[col].astype(float).round(0).astype("Int64")
-    return _atomic.write_csv(Path(out_dir) / REPLACEMENT_FILE, out)
+    return _atomic.write_csv(Path(out_dir) / REPLACEMENT_FILE, whole_days(frame))
 
 
 __all__ = ["REPLACEMENT_FILE", "check_costs", "replacement_ages", "write_replacement_ages"]

@@ -51,7 +51,7 @@ import pandas as pd
 from wearcast import _atomic
 from wearcast._poisson_binomial import count_pmf
 from wearcast.exceptions import ConfigError, DataError, ModelError
-from wearcast.lifetable import FLEET, group_labels
+from wearcast.lifetable import group_labels, group_members
 
 #: Quantiles reported as the interval (5 % and 95 %).
 INTERVAL = (0.05, 0.95)
@@ -128,15 +128,6 @@ def current_units(table) -> tuple[pd.DataFrame, np.ndarray, np.ndarray]:
             "interval may be marked in_service. Check the register for a duplicated unit."
         )
     return rows, ids, rows["exit_age"].to_numpy(dtype=float)
-
-
-def group_members(groupings, n_units: int) -> list[tuple[tuple[str, str], np.ndarray]]:
-    """``[((column, level), unit positions), ...]``, the whole fleet first, levels sorted."""
-    members = [(FLEET, np.arange(n_units))]
-    for col, labels in groupings:
-        for level in sorted(set(labels)):
-            members.append(((col, str(level)), np.flatnonzero(labels == level)))
-    return members
 
 
 def members_key(members) -> str:
