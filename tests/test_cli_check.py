@@ -157,6 +157,13 @@ def test_costs_need_both_keys_and_too_few_failures_give_no_age(tmp_path):
     both = run(tmp_path, base + "[costs]\nplanned_replacement = 1.0\nfailure = 5.0\n")
     assert both.exit_code == 0, both.stderr
     # one failure on record: no Weibull fit, so no planned age (and the reason is printed)
-    assert "fleet planned replacement: none (too few failures for a Weibull fit)" in both.stdout.splitlines()
+    assert ("fleet planned replacement: no age given; no Weibull fit (fewer than two failures, or the fit did "
+            "not settle)") in both.stdout.splitlines()
     ages = pd.read_csv(tmp_path / "out" / "replacement_ages.csv")
-    assert ages["reading"].tolist() == ["too few failures for a Weibull fit"]
+    assert ages["reading"].tolist() == ["no Weibull fit (fewer than two failures, or the fit did not settle)"]
+    # a rerun without [costs] into the same folder leaves no stale replacement ages behind,
+    # and check alone never writes (or overwrites) a full run's run_summary.json
+    again = run(tmp_path, base)
+    assert again.exit_code == 0, again.stderr
+    assert not (tmp_path / "out" / "replacement_ages.csv").exists()
+    assert not (tmp_path / "out" / "run_summary.json").exists()

@@ -64,11 +64,11 @@ def test_mtbf_bounds_are_exact_poisson_bounds(failures):
 
 
 def test_mtbf_without_failures_gives_only_a_lower_bound():
-    # With r = 0 the upper Poisson bound solves exp(-U) = a/2, so the lower MTBF bound is
-    # T / ln(2 / a) (closed form of the same definition).
+    # With r = 0 there is no upper bound, so the lower one is one-sided at the level: the Poisson
+    # mean U with P(X = 0 | U) = exp(-U) = 1 - level, giving T / ln(1 / (1 - level)) = T / ln 10 at 90 %.
     estimate, low, high = mtbf_bounds(1_000.0, 0, 0.90)
     assert np.isnan(estimate) and np.isnan(high)
-    assert low == pytest.approx(1_000.0 / np.log(2 / 0.10), rel=1e-10)
+    assert low == pytest.approx(1_000.0 / np.log(10.0), rel=1e-10)
     assert all(np.isnan(mtbf_bounds(0.0, 0)))
     with pytest.raises(ValueError, match="level"):
         mtbf_bounds(10.0, 1, level=1.5)
@@ -133,11 +133,13 @@ def test_repaired_lives_count_to_their_first_failure():
     kept = first_failure_rows(frame)
     assert kept.tolist() == [0, 3, 4, 5]  # unit a stops at its first failure; b's rows are all before it
     table = LifeTable.from_frame(frame)
-    fleet = life_statistics(table, b_lives=(10,)).iloc[0]
+    fleet = life_statistics(table, b_lives=(10, 50)).iloc[0]
     assert fleet["failures"] == 3
     assert fleet["mtbf_days"] == pytest.approx((400 + 500 + 400) / 3)
-    # first failures: a at 100 (3 at risk: a, b, c), b at 500 (alone) -> S drops to 2/3 at 100
+    # first failures: a at 100 (3 at risk: a, b, c), b at 500 (alone) -> S drops to 2/3 at 100, 0 at 500
     assert fleet["b10_days"] == pytest.approx(100.0)
+    # B50 tells first failures from all failures: a's repeat failure at 250 would give S = 4/9 there
+    assert fleet["b50_days"] == pytest.approx(500.0)
 
 
 # -- groups ---------------------------------------------------------------------------------------
@@ -170,7 +172,7 @@ def test_weibull_columns_are_lifelines_fit_with_entry_and_read_in_words():
     assert headline["fleet_weibull_reading"] == "no clear trend with age (a constant, random failure rate fits)"
     assert shape_reading(2.0, 1.6, 2.4) == "failure rate rising with age (wear-out)"
     assert shape_reading(0.6, 0.4, 0.8) == "failure rate falling with age (early-life failures)"
-    assert shape_reading(float("nan"), float("nan"), float("nan")) == "too few failures for a Weibull fit"
+    assert shape_reading(float("nan"), float("nan"), float("nan")).startswith("no Weibull fit")
 
 
 def test_check_prints_the_weibull_line():

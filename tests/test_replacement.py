@@ -67,7 +67,11 @@ def test_group_table_and_cost_checks():
     assert fleet["best_age_days"] == pytest.approx(best_replacement_age(2.0, 2000.0, 1.0, 4.0)["age"])
     assert fleet["cost_per_year_run_to_failure"] == pytest.approx(4.0 / (2000 * gamma(1.5)) * 365.25)
     assert np.isnan(a["best_age_days"]) and "does not pay" in a["reading"]
-    assert "too few failures" in b["reading"]
+    assert b["reading"].startswith("no Weibull fit") and not b["wear_out_clear"]
+    assert fleet["wear_out_clear"] and not c["wear_out_clear"]
+    # renewal = "repair": a repair does not start a new life, so no age at all
+    repaired = replacement_ages(stats, 1.0, 4.0, renewal="repair")
+    assert repaired["best_age_days"].isna().all() and repaired["reading"].str.contains("does not apply").all()
     assert check_costs(None, None) is False and check_costs(1.0, 3.0) is True
     with pytest.raises(ConfigError, match="needs both"):
         check_costs(1.0, None)

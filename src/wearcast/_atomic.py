@@ -85,6 +85,19 @@ def write_csv(path: str | os.PathLike, frame) -> Path:
     return write_text(path, frame.to_csv(index=False, float_format="%.6g", lineterminator="\n"))
 
 
+def remove_output(path: str | os.PathLike) -> bool:
+    """Delete an optional output a rerun did not write (so a run folder never mixes runs).
+
+    Returns True when a file was removed.
+    """
+    path = Path(path)
+    if not path.is_file():
+        return False
+    path.unlink()
+    _fsync_dir(path.parent)
+    return True
+
+
 def remove_stale_temporaries(folder: str | os.PathLike) -> list[Path]:
     """Delete temp files a killed run left in ``folder`` (recursively)."""
     removed = []

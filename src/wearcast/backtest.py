@@ -378,5 +378,7 @@ def write_backtest(result: BacktestResult, out_dir) -> list[Path]:
         per_mode = result.per_mode.assign(origin=[d.isoformat() for d in result.per_mode["origin"]])
         payload["per_mode"] = json.loads(per_mode.to_json(orient="records"))
         written.append(_atomic.write_csv(out_dir / "backtest_modes.csv", per_mode))
+    else:
+        _atomic.remove_output(out_dir / "backtest_modes.csv")  # an earlier backtest's
     written.append(_atomic.write_json(out_dir / "backtest.json", payload))
     return written

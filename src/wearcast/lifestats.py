@@ -11,7 +11,8 @@ for the whole fleet and for each level of the ``[fleet] group_by`` columns:
   ``2T / chi2(a/2; 2r)``, ``a = 1 - level``. These are ``T`` divided by
   Garwood's exact bounds for the Poisson failure count (Garwood 1936,
   *Biometrika* 28:437–442). With no failures there is no estimate and no
-  upper bound, only the lower one ("at least this long").
+  upper bound, only a one-sided lower bound at ``level`` ("at least this
+  long"): ``T / ln(1 / (1 - level))``.
 * **B-lives** (days): the age by which ``p`` % of units have failed, read off
   the delayed-entry product-limit curve as the first age where
   ``S(t) <= 1 - p/100`` (lifelines' ``qth_survival_time`` convention), with
@@ -57,16 +58,17 @@ DEFAULT_LEVEL = 0.90
 def mtbf_bounds(time_at_risk: float, failures: int, level: float = DEFAULT_LEVEL) -> tuple[float, float, float]:
     """``(estimate, low, high)`` MTBF for ``failures`` in ``time_at_risk`` (time-terminated).
 
-    No failures: ``(nan, low, nan)``. No time at risk: all NaN.
+    No failures: ``(nan, low, nan)`` with ``low`` one-sided at ``level``. No time at risk: all NaN.
     """
     if not 0.0 < level < 1.0:
         raise ValueError(f"level must be between 0 and 1, got {level!r}")
     if not time_at_risk > 0:
         return float("nan"), float("nan"), float("nan")
     alpha = 1.0 - level
-    low = 2.0 * time_at_risk / chi2.ppf(1.0 - alpha / 2.0, 2 * failures + 2)
     if failures == 0:
-        return float("nan"), float(low), float("nan")
+        # no upper bound exists, so the whole level goes to the lower one (one-sided)
+        return float("nan"), float(2.0 * time_at_risk / chi2.ppf(level, 2)), float("nan")
+    low = 2.0 * time_at_risk / chi2.ppf(1.0 - alpha / 2.0, 2 * failures + 2)
     high = 2.0 * time_at_risk / chi2.ppf(alpha / 2.0, 2 * failures)
     return time_at_risk / failures, float(low), float(high)
 
@@ -163,10 +165,13 @@ def _group_record(rows: _Rows, key: tuple[str, str], idx: np.ndarray, b_lives: S
     return record
 
 
+NO_WEIBULL = "no Weibull fit (fewer than two failures, or the fit did not settle)"
+
+
 def shape_reading(shape: float, low: float, high: float) -> str:
-    """The Weibull shape in words, called only when its bounds are on one side of 1."""
+    """The Weibull shape in words; a trend is named only when both bounds are on one side of 1."""
     if not np.isfinite(shape):
-        return "too few failures for a Weibull fit"
+        return NO_WEIBULL
     if low > 1.0:
         return "failure rate rising with age (wear-out)"
     if high < 1.0:
@@ -204,5 +209,5 @@ def whole_days(frame: pd.DataFrame) -> pd.DataFrame:
     return out
 
 
-__all__ = ["LIFE_STATISTICS_FILE", "life_statistics", "write_life_statistics", "fleet_headline", "mtbf_bounds",
+__all__ = ["NO_WEIBULL", "LIFE_STATISTICS_FILE", "life_statistics", "write_life_statistics", "fleet_headline", "mtbf_bounds",
            "b_life", "first_failure_rows", "shape_reading"]

@@ -50,16 +50,20 @@ def check_stage(config: Config, out_dir: Path, state: JobState) -> dict:
     import pandas as pd
 
     from wearcast.lifestats import fleet_headline, life_statistics, write_life_statistics
-    from wearcast.replacement import check_costs, replacement_ages, write_replacement_ages
+    from wearcast.modes import check_modes_by
+    from wearcast.replacement import REPLACEMENT_FILE, check_costs, replacement_ages, write_replacement_ages
 
     state.export = load_export(config, quarantine_dir=out_dir)
     summary = write_check(state.export, out_dir)
+    check_modes_by(state.export.table.frame, config.ranking.modes_by, config.ranking.mode_prior_failures)
     stats = life_statistics(state.export.table, config.fleet.group_by)
     summary["life_statistics_path"] = str(write_life_statistics(stats, out_dir))
     summary.update(fleet_headline(stats))
     costs = config.costs
+    _atomic.remove_output(out_dir / REPLACEMENT_FILE)  # an earlier run's, when [costs] is gone now
     if check_costs(costs.planned_replacement, costs.failure, config.source):
-        ages = replacement_ages(stats, costs.planned_replacement, costs.failure)
+        ages = replacement_ages(stats, costs.planned_replacement, costs.failure,
+                                renewal=state.export.table.meta.get("renewal", "replace"))
         summary["replacement_ages_path"] = str(write_replacement_ages(ages, out_dir))
         fleet = ages.iloc[0]
         for key, col in (("fleet_best_replacement_age_days", "best_age_days"),
@@ -68,6 +72,7 @@ def check_stage(config: Config, out_dir: Path, state: JobState) -> dict:
                          ("fleet_replacement_saving", "saving")):
             summary[key] = None if pd.isna(fleet[col]) else round(float(fleet[col]), 3)
         summary["fleet_replacement_reading"] = fleet["reading"]
+        summary["fleet_wear_out_clear"] = bool(fleet["wear_out_clear"])
     # Paths inside the run folder are written relative to it, so a folder can be moved
     # (the monthly run renames its staging folder) and reruns elsewhere match byte for byte.
     on_disk = {k: (_relative(v, out_dir) if k.endswith("_path") else v) for k, v in summary.items()}
@@ -123,10 +128,12 @@ def rank_stage(config: Config, out_dir: Path, state: JobState) -> dict:
         state.ranked.summary["planned_replacement_age_days"] = float(best_age)
         state.ranked.summary["units_past_planned_replacement_age"] = int(past.sum())
     paths = write_ranking(state.ranked, out_dir)
-    if modes is not None:
-        from wearcast.modes import write_mode_forecast
+    from wearcast.modes import MODE_FORECAST_FILE, write_mode_forecast
 
+    if modes is not None:
         paths["mode_forecast"] = write_mode_forecast(modes[0], out_dir)
+    else:
+        _atomic.remove_output(out_dir / MODE_FORECAST_FILE)  # an earlier run's, when no mode is recorded now
     return {k + "_path": str(v) for k, v in paths.items()} | {"units_ranked": len(state.ranked.ranked_units)}
 
 

@@ -24,11 +24,14 @@ import pandas as pd
 from wearcast import _atomic
 from wearcast._age_replacement import best_replacement_age
 from wearcast.exceptions import ConfigError
-from wearcast.lifestats import whole_days
+from wearcast.lifestats import NO_WEIBULL, whole_days
 
 REPLACEMENT_FILE = "replacement_ages.csv"
 COLUMNS = ["group_by", "group", "weibull_shape", "weibull_scale_days", "best_age_days", "age_low_days",
-           "age_high_days", "cost_per_year_at_best", "cost_per_year_run_to_failure", "saving", "reading"]
+           "age_high_days", "cost_per_year_at_best", "cost_per_year_run_to_failure", "saving", "wear_out_clear",
+           "reading"]
+REPAIR_READING = ("renewal = \"repair\": failures are repaired, not replaced, so the age-replacement model "
+                  "(each replacement starts a new life) does not apply")
 
 
 def check_costs(cost_planned: float | None, cost_failure: float | None, source: str = "config") -> bool:
@@ -44,25 +47,32 @@ def check_costs(cost_planned: float | None, cost_failure: float | None, source: 
     return True
 
 
-def replacement_ages(stats: pd.DataFrame, cost_planned: float, cost_failure: float) -> pd.DataFrame:
+def replacement_ages(stats: pd.DataFrame, cost_planned: float, cost_failure: float,
+                     renewal: str = "replace") -> pd.DataFrame:
     """One row per row of ``stats``: the best planned replacement age and what it saves.
 
     Ages in days; costs per year (365.25 days) in the config's cost unit;
     ``saving``: share of the run-to-failure cost per year saved at the best age;
     ``age_low_days``/``age_high_days``: ages costing within 5 % of the best.
-    ``reading``: why there is no age when there is none.
+    ``wear_out_clear``: the Weibull shape's lower bound is above 1 (the records show wear-out).
+    ``reading``: why there is no age when there is none. With ``renewal = "repair"`` no
+    age is given (a repair does not start a new life).
     """
     check_costs(cost_planned, cost_failure)
     records = []
     for row in stats.itertuples(index=False):
         shape, scale = float(getattr(row, "weibull_shape", np.nan)), float(getattr(row, "weibull_scale_days", np.nan))
-        record = {"group_by": row.group_by, "group": row.group, "weibull_shape": shape, "weibull_scale_days": scale}
+        shape_low = float(getattr(row, "weibull_shape_low", np.nan))
+        record = {"group_by": row.group_by, "group": row.group, "weibull_shape": shape, "weibull_scale_days": scale,
+                  "wear_out_clear": bool(shape_low > 1.0)}
+        if renewal == "repair":
+            records.append(record | {"reading": REPAIR_READING})
+            continue
         if not (np.isfinite(shape) and np.isfinite(scale)):
-            records.append(record | {"reading": "too few failures for a Weibull fit"})
+            records.append(record | {"reading": NO_WEIBULL})
             continue
         best = best_replacement_age(shape, scale, cost_planned, cost_failure)
-        shape_low = float(getattr(row, "weibull_shape_low", np.nan))
-        if np.isfinite(best["age"]) and shape_low <= 1.0:
+        if np.isfinite(best["age"]) and not record["wear_out_clear"]:
             reading = ("pays only if the failure rate truly rises with age: the Weibull shape's bounds include 1, "
                        "so the records do not show wear-out clearly")
         elif np.isfinite(best["age"]):

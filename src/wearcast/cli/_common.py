@@ -125,12 +125,12 @@ def life_lines(summary: dict) -> list[str]:
     if "fleet_replacement_reading" in summary:
         age = summary.get("fleet_best_replacement_age_days")
         if age is None:
-            lines.append(f"fleet planned replacement: none ({summary['fleet_replacement_reading']})")
+            lines.append(f"fleet planned replacement: no age given; {summary['fleet_replacement_reading']}")
         else:
             low, high = summary["fleet_replacement_age_low_days"], summary["fleet_replacement_age_high_days"]
             lines.append(f"fleet planned replacement: best at {age:,.0f} days = {age / 365.25:.1f} years "
                          f"(within 5 % of the best cost from {low:,.0f} to {high:,.0f} days), saving "
                          f"{summary['fleet_replacement_saving']:.0%} of the cost of replacing only at failure"
-                         + (f"; {summary['fleet_replacement_reading']}"
-                            if "bounds include 1" in summary["fleet_replacement_reading"] else ""))
+                         + ("" if summary.get("fleet_wear_out_clear", True)
+                            else f"; {summary['fleet_replacement_reading']}"))
     return lines

@@ -56,14 +56,15 @@ def life_statistics_table(inputs, table) -> list[str]:
     return [
         h.table(frame, columns, caption=f"Life statistics from the records alone (ages and MTBF in years; {level * 100:.0f} % bounds in brackets)", cls="life-stats", table_id="life-stats"),
         h.paragraph(
-            "B10 life: the age by which one unit in ten has failed, read off the survival curve above (late "
-            "entry respected); B50 is the median life. A dash means the curve has not fallen that far within "
+            "B10 life: the age by which one unit in ten has failed, read off the Kaplan–Meier curve of each "
+            "life up to its first failure (late entry respected; the curve above, unless renewal = \"repair\" "
+            "counts repeat failures there); B50 is the median life. A dash means the curve has not fallen that far within "
             "the records; \"≥\" marks a bound beyond them. MTBF: unit-years observed divided by "
             "failures, which assumes a constant failure rate; when the rate rises with age (wear-out), trust "
             "the B-lives over the MTBF. Weibull β (shape): from a Weibull distribution fitted to the same lives "
             "(late entry respected); above 1 the failure rate rises with age (wear-out), below 1 it falls "
             f"(early-life failures), near 1 it is constant. Bounds are {level * 100:.0f} % intervals for sampling "
-            f"only.{caveat}{_shape_sentence(frame[is_fleet])}"),
+            f"only (the figure's band is 95 %).{caveat}{_shape_sentence(frame[is_fleet])}"),
     ]
 
 
@@ -158,4 +159,5 @@ def _past_sentence(summary: dict) -> str:
 
 
 def _unclear(row) -> bool:
-    return "bounds include 1" in str(row.get("reading", ""))
+    """An age is given but the Weibull shape's bounds include 1 (no clear wear-out)."""
+    return not h.is_missing(row.get("best_age_days")) and str(row.get("wear_out_clear")).lower() in ("false", "0")
