@@ -6,7 +6,13 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
+from wearcast.lifetable import FLEET
 from wearcast.report import _html as h
+
+
+def _is_fleet(frame: pd.DataFrame) -> pd.Series:
+    """The whole-fleet rows of a per-group output (``wearcast.lifetable.FLEET``)."""
+    return (frame["group_by"].astype(str) == FLEET[0]) & (frame["group"].astype(str) == FLEET[1])
 
 
 def life_statistics_table(inputs, table) -> list[str]:
@@ -20,7 +26,7 @@ def life_statistics_table(inputs, table) -> list[str]:
         return []
     level = float(stats["level"].iloc[0]) if "level" in stats.columns else 0.9
     frame = stats.copy()
-    is_fleet = (frame["group_by"] == "fleet") & (frame["group"] == "all")
+    is_fleet = _is_fleet(frame)
     frame["label"] = np.where(is_fleet, "whole fleet", frame["group"].astype(str))
     by_names = sorted(set(frame.loc[~is_fleet, "group_by"].astype(str)))
     # own field names, so a reader's data-field lookup does not confuse them with the fleet facts above
@@ -85,7 +91,7 @@ def mode_table(forecast: pd.DataFrame | None, summary: dict) -> list[str]:
     """Expected failures of each mode for the fleet, one column per horizon (mode_forecast.csv)."""
     if forecast is None or forecast.empty:
         return []
-    fleet = forecast[(forecast["group_by"] == "fleet") & (forecast["group"].astype(str) == "all")]
+    fleet = forecast[_is_fleet(forecast)]
     if fleet.empty:
         return []
     horizons = sorted(fleet["horizon_days"].unique(), key=float)
@@ -121,7 +127,7 @@ def replacement_table(ages: pd.DataFrame | None, summary: dict | None = None) ->
     if ages is None or ages.empty or "best_age_days" not in ages.columns:
         return []
     frame = ages.copy()
-    is_fleet = (frame["group_by"] == "fleet") & (frame["group"].astype(str) == "all")
+    is_fleet = _is_fleet(frame)
     frame["label"] = np.where(is_fleet, "whole fleet", frame["group"].astype(str))
 
     def age_cell(row):
