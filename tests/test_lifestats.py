@@ -203,3 +203,26 @@ def test_counts_per_group_equal_the_life_table_summary(tmp_path):
     for site in table.frame["site"].unique():
         part = table.take_rows(np.flatnonzero((table.frame["site"] == site).to_numpy())).summary()
         assert [stats.loc[("site", site), k] for k in keys] == pytest.approx([part[k] for k in keys]), site
+
+
+def test_split_lives_give_the_same_statistics_and_gaps_stay_gaps():
+    from wearcast.lifestats import _merge_contiguous
+
+    df = _macs()
+    whole = life_statistics(_macs_table()).iloc[0]
+    mid = (df["W"] + df["T"]) / 2
+    ids = [f"p{i}" for i in range(len(df))]
+    split = LifeTable.from_frame(pd.DataFrame({
+        "unit_id": ids + ids, "entry_age": np.r_[df["W"], mid], "exit_age": np.r_[mid, df["T"]],
+        "failed": np.r_[np.zeros(len(df), bool), df["D"].astype(bool)]}))
+    halves = life_statistics(split).iloc[0]
+    for col in ("failures", "lives", "time_at_risk_days", "b10_days", "b50_days", "b50_low_days",
+                "weibull_shape", "weibull_scale_days", "weibull_shape_high"):
+        assert halves[col] == pytest.approx(whole[col], rel=1e-9), col
+    # (0, 100] then (150, 200] of one life: the unobserved (100, 150] is not joined in
+    key = np.array([1, 1, 1, 2])
+    entry, exit_, failed = _merge_contiguous(key, np.array([0.0, 100.0, 150.0, 0.0]),
+                                             np.array([100.0, 120.0, 200.0, 50.0]),
+                                             np.array([False, False, True, False]))
+    assert entry.tolist() == [0.0, 150.0, 0.0] and exit_.tolist() == [120.0, 200.0, 50.0]
+    assert failed.tolist() == [False, True, False]

@@ -115,6 +115,22 @@ def _first_failure_mask(key: np.ndarray, failed: np.ndarray) -> np.ndarray:
     return before == 0
 
 
+def _merge_contiguous(key, entry, exit, failed) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Join back-to-back rows of one life ((a, b] then (b, c]) into one row (a, c].
+
+    Rows sorted by life, then age. The product-limit curve and the Weibull
+    likelihood are the same either way (a life is at risk at the same ages, and
+    its likelihood telescopes); the curve and the fit just get fewer rows. A gap
+    in a life's record stays a gap. The failure, if any, is on a run's last row.
+    """
+    if len(key) == 0:
+        return entry, exit, failed
+    starts = np.r_[True, (key[1:] != key[:-1]) | (entry[1:] != exit[:-1])]
+    first = np.flatnonzero(starts)
+    last = np.r_[first[1:] - 1, len(key) - 1]
+    return entry[first], exit[last], np.logical_or.reduceat(failed, first)
+
+
 def first_failure_rows(frame: pd.DataFrame) -> np.ndarray:
     """Positions of the rows of each life up to and including its first failure."""
     rows = _Rows(frame)
@@ -150,7 +166,7 @@ def _group_record(rows: _Rows, key: tuple[str, str], idx: np.ndarray, b_lives: S
     estimate, low, high = mtbf_bounds(time_at_risk, record["failures"], level)
     record.update(mtbf_days=estimate, mtbf_low_days=low, mtbf_high_days=high)
     first = idx[_first_failure_mask(life_key, failed)]
-    entry, exit_, event = rows.entry[first], rows.exit[first], rows.failed[first]
+    entry, exit_, event = _merge_contiguous(rows.key[first], rows.entry[first], rows.exit[first], rows.failed[first])
     curve = product_limit_survival(entry, exit_, event, level=level)
     for p in b_lives:
         name = f"b{_plain(p)}"
