@@ -402,7 +402,7 @@ def test_rebuilding_removes_figures_the_new_page_does_not_have(tmp_path):
     build_report(ReportInputs(ranked_units=ranked_units(), summary=summary()), tmp_path)
     assert (tmp_path / FIGURES_DIR / "top_units.png").exists()
     build_report(ReportInputs(life_table=life_table()), tmp_path)
-    assert sorted(p.stem for p in (tmp_path / FIGURES_DIR).glob("*.png")) == ["hazard", "survival"]
+    assert sorted(p.stem for p in (tmp_path / FIGURES_DIR).glob("*.png")) == ["hazard", "survival", "weibull"]
 
 
 def test_run_without_refits_still_renders(tmp_path):
@@ -455,7 +455,7 @@ def test_report_from_the_scenario_fleet(tmp_path):
 
     paths = build_report(ReportInputs(title="Demo fleet (invented)", as_of="2026-11-30", life_table=table,
                                       group_by="site", data_quality=dq), tmp_path / "report")
-    assert {"survival", "hazard"} <= set(paths)
+    assert {"survival", "hazard", "weibull"} <= set(paths)
     parsed = _parse(paths["report"].read_text(encoding="utf-8"))
     marked = {n["data-field"]: n["data-value"] for n in parsed.numbers}
     facts = table.summary()

@@ -67,3 +67,16 @@ def test_a_life_split_into_rows_gives_the_same_fit():
 def test_too_few_failures_give_no_fit():
     out = fit_weibull([0.0, 0.0, 0.0], [10.0, 20.0, 30.0], [True, False, False])
     assert not out["converged"] and np.isnan(out["shape"]) and np.isnan(out["scale_high"])
+
+
+def test_probability_plot_puts_a_weibull_curve_on_its_fitted_line():
+    from wearcast._weibull import probability_plot
+
+    shape, scale = 2.3, 900.0
+    ages = np.array([0.0, 100.0, 450.0, 900.0, 2000.0, 5000.0])
+    survival = np.exp(-(ages / scale) ** shape)
+    x, y = probability_plot(ages, survival)
+    # age 0 (S = 1) is left out: it has no place on a log axis
+    assert len(x) == 5
+    np.testing.assert_allclose(y, shape * (x - np.log(scale)), rtol=1e-10, atol=1e-10)
+    assert y[list(np.exp(x)).index(pytest.approx(900.0))] == pytest.approx(0.0)  # 63.2 % failed at the scale

@@ -118,3 +118,13 @@ def fit_weibull(entry, exit, event, *, level: float = 0.90, max_iter: int = 100,
                scale_low=float(np.exp(u - z * se_u)), scale_high=float(np.exp(u + z * se_u)),
                converged=True)
     return out
+
+
+def probability_plot(ages, survival) -> tuple[np.ndarray, np.ndarray]:
+    """Weibull probability-plot coordinates ``(log age, log(-log S))`` of the points with 0 < S < 1.
+
+    On these axes a Weibull curve is the straight line ``shape * (log age - log scale)``.
+    """
+    ages, survival = np.asarray(ages, float), np.asarray(survival, float)
+    keep = (ages > 0) & (survival > 0) & (survival < 1)
+    return np.log(ages[keep]), np.log(-np.log(survival[keep]))

@@ -291,6 +291,40 @@ def survival_figure(observed: Sequence[tuple[str, dict]], predicted: pd.DataFram
     return _png(fig)
 
 
+def weibull_plot_figure(curve: dict, shape: float, scale_days: float) -> bytes:
+    """Weibull probability plot: the fleet's product-limit points and the fitted straight line.
+
+    x: age (log scale, years); y: share failed on the Weibull scale ``log(-log S)``.
+    """
+    from wearcast._weibull import probability_plot
+
+    fig, axes = _figure(6.4, 3.8)
+    ax = axes[0]
+    x, y = probability_plot(curve["age"], curve["survival"])
+    ax.plot(np.exp(x) / DAYS_PER_YEAR, y, ls="none", marker="o", ms=3, color=INK, alpha=0.7,
+            label="records (Kaplan–Meier with late entry)")
+    if len(x):
+        ages = np.exp(np.linspace(x.min(), x.max(), 50))
+        ax.plot(ages / DAYS_PER_YEAR, shape * (np.log(ages) - np.log(scale_days)), color=PALETTE["vermillion"],
+                lw=1.8, label=f"Weibull fit (shape {shape:.2f})")
+    ax.set_xscale("log")
+    years = np.array([0.1, 0.2, 0.5, 1, 2, 5, 10, 20, 50, 100])
+    low_x, high_x = ax.get_xlim()
+    ax.set_xticks(years[(years >= low_x) & (years <= high_x)])
+    ax.set_xticklabels([f"{v:g}" for v in years[(years >= low_x) & (years <= high_x)]])
+    ax.minorticks_off()
+    shares = np.array([0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.3, 0.5, 0.632, 0.8, 0.9, 0.99])
+    ticks = np.log(-np.log(1 - shares))
+    lo, hi = (y.min(), y.max()) if len(y) else (ticks[0], ticks[-1])
+    shown = (ticks >= lo - 0.3) & (ticks <= hi + 0.3)
+    ax.set_yticks(ticks[shown])
+    ax.set_yticklabels([f"{100 * v:g}%" for v in shares[shown]])
+    ax.set_xlabel("age since install (years, log scale)")
+    ax.set_ylabel("share failed (Weibull scale)")
+    ax.legend(loc="upper left", fontsize=7)
+    return _png(fig)
+
+
 def hazard_figure(curve: dict, bandwidth_days: float) -> bytes:
     """Smoothed hazard rate against age, in failures per unit-year, with 95 % band."""
     fig, axes = _figure(6.4, 3.4)

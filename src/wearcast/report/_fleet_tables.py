@@ -15,14 +15,32 @@ def _is_fleet(frame: pd.DataFrame) -> pd.Series:
     return (frame["group_by"].astype(str) == FLEET[0]) & (frame["group"].astype(str) == FLEET[1])
 
 
-def life_statistics_table(inputs, table) -> list[str]:
-    """MTBF and B-lives per group (life_statistics.csv, or computed from the life table)."""
+def statistics(inputs, table) -> pd.DataFrame | None:
+    """The life statistics to show: life_statistics.csv, or computed from the life table."""
     stats = inputs.life_statistics
     if stats is None:
         from wearcast.lifestats import life_statistics
 
         stats = life_statistics(table, [inputs.group_by] if inputs.group_by in table.frame.columns else [])
     if stats is None or stats.empty or "mtbf_days" not in stats.columns:
+        return None
+    return stats
+
+
+def fleet_weibull(stats: pd.DataFrame | None) -> tuple[float, float] | None:
+    """(shape, scale in days) of the whole fleet's Weibull fit, when there is one."""
+    if stats is None or "weibull_shape" not in stats.columns:
+        return None
+    fleet = stats[_is_fleet(stats)]
+    if fleet.empty:
+        return None
+    shape, scale = float(fleet["weibull_shape"].iloc[0]), float(fleet["weibull_scale_days"].iloc[0])
+    return (shape, scale) if np.isfinite(shape) and np.isfinite(scale) else None
+
+
+def life_statistics_table(stats: pd.DataFrame | None) -> list[str]:
+    """MTBF, B-lives and the Weibull shape per group."""
+    if stats is None:
         return []
     level = float(stats["level"].iloc[0]) if "level" in stats.columns else 0.9
     frame = stats.copy()

@@ -314,7 +314,17 @@ def fleet(inputs) -> Section:
         ("lives entering records late", h.number(facts["delayed_entries"], h.fmt_count, "delayed_entries")),
         ("unit-years observed", h.number(facts["time_at_risk_days"] / 365.25, lambda v: f"{v:,.0f}", "unit_years")),
     ], caption="What the curves are built from."))
-    parts.extend(_fleet_tables.life_statistics_table(inputs, table))
+    stats = _fleet_tables.statistics(inputs, table)
+    parts.extend(_fleet_tables.life_statistics_table(stats))
+    fit = _fleet_tables.fleet_weibull(stats)
+    if fit is not None and len(observed[0][1]["age"]) >= 3:
+        figures["weibull"] = _figures.weibull_plot_figure(observed[0][1], *fit)
+        parts.append(h.figure(
+            "weibull", figures["weibull"], "Weibull probability plot of the fleet",
+            "Each point is the share of the fleet failed by that age, from the records (late entry "
+            "respected), on scales where a Weibull life is a straight line; the line is the Weibull fit in the "
+            "table above. Points that bend away from the line suggest more than one failure pattern (early "
+            "failures and wear-out, or a mix of makers), which one Weibull cannot describe."))
     parts.extend(_fleet_tables.replacement_table(inputs.replacement_ages, inputs.summary))
     return h.section("fleet", "Fleet reliability", "".join(parts),
                      lead="How the fleet as a whole has survived so far, read from the records alone."), figures
