@@ -126,3 +126,15 @@ def test_failures_at_one_age_cannot_be_banded():
              "mode": "wear" if i % 2 else "seal"} for i in range(80)]
     check = mode_mix_by_age(LifeTable.from_frame(pd.DataFrame(rows)))
     assert check["p_value"] is None and check["bands"] == 1 and "Too few" in check["statement"]
+
+
+def test_terminal_lines_show_the_fleet_rows_per_horizon():
+    from wearcast.cli._common import mode_lines
+
+    frame = pd.DataFrame({"group_by": ["fleet", "fleet", "site"], "group": ["all", "all", "North"],
+                          "horizon_days": [90, 90, 90], "mode": ["seal_leak", "bearing", "seal_leak"],
+                          "expected_failures": [4.71, 3.9, 1.0], "chance_only_low": [1, 1, 0],
+                          "chance_only_high": [8, 7, 3], "mode_share": [0.55, 0.45, 1.0]})
+    assert mode_lines(frame) == ["expected failures by failure mode (chance-only 90 % interval):",
+                                 "  within 90 days: seal_leak 4.7 (1-8), bearing 3.9 (1-7)"]
+    assert mode_lines(None) == []

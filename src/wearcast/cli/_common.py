@@ -98,6 +98,19 @@ def forecast_lines(forecast, heading: str = "expected failures in the fleet:") -
     return lines
 
 
+def mode_lines(modes) -> list[str]:
+    """The whole fleet's expected failures by failure mode (modes.mode_forecast), a line per horizon."""
+    if modes is None or len(modes) == 0:
+        return []
+    fleet = modes[(modes["group_by"].astype(str) == "fleet") & (modes["group"].astype(str) == "all")]
+    lines = ["expected failures by failure mode (chance-only 90 % interval):"]
+    for h, part in fleet.groupby("horizon_days", sort=True):
+        cells = ", ".join(f"{row['mode']} {float(row['expected_failures']):.1f} "
+                          f"({int(row['chance_only_low'])}-{int(row['chance_only_high'])})" for _, row in part.iterrows())
+        lines.append(f"  within {int(h)} days: {cells}")
+    return lines
+
+
 def life_lines(summary: dict) -> list[str]:
     """Fleet MTBF and B-lives with their bounds, when the check computed them."""
     level = summary.get("life_statistics_level")

@@ -6,7 +6,7 @@ from pathlib import Path
 
 import click
 
-from wearcast.cli._common import EPILOG_CAUTION, command_help, forecast_lines, library_call, life_lines
+from wearcast.cli._common import EPILOG_CAUTION, command_help, forecast_lines, library_call, life_lines, mode_lines
 
 
 def describe(result: dict) -> list[str]:
@@ -45,7 +45,9 @@ def _forecast_lines(rank: dict) -> list[str]:
         return []
     import pandas as pd
 
-    return forecast_lines(pd.read_csv(path, keep_default_na=False), "expected failures in the invented fleet:")
+    lines = forecast_lines(pd.read_csv(path, keep_default_na=False), "expected failures in the invented fleet:")
+    modes = rank.get("mode_forecast_path")
+    return lines + (mode_lines(pd.read_csv(modes, keep_default_na=False, na_values=[""])) if modes else [])
 
 
 @click.command(

@@ -7,7 +7,7 @@ from pathlib import Path
 import click
 
 from wearcast.cli._common import (EPILOG_CAUTION, command_help, config_argument, forecast_lines, library_call, load,
-                                  out_option, workers_options)
+                                  mode_lines, out_option, workers_options)
 
 
 def describe_ranking(ranked, top: int = 10) -> list[str]:
@@ -49,7 +49,17 @@ def command(config: Path, out_dir: Path | None, model_name: str | None, jobs: in
     summaries = run_job(cfg, out_dir, state=state)
     for line in describe_ranking(state.ranked):
         click.echo(line)
+    for line in mode_lines(_read_modes(summaries["rank"].get("mode_forecast_path"))):
+        click.echo(line)
     click.echo(f"model: {state.ranked.summary.get('model')} — {state.fit.choice.reason}")
     click.echo(f"report: {summaries['report']['report_path']}")
     click.echo(f"outputs are in {out_dir}")
     click.echo(EPILOG_CAUTION)
+
+
+def _read_modes(path):
+    if not path:
+        return None
+    import pandas as pd
+
+    return pd.read_csv(path, keep_default_na=False, na_values=[""])
