@@ -107,6 +107,10 @@ def test_b50_is_lifelines_median_with_entry():
     fleet = life_statistics(_macs_table()).iloc[0]
     assert fleet["b50_days"] == pytest.approx(km.median_survival_time_)
     assert fleet["observed_from_age_days"] == pytest.approx(df["W"].min())
+    # the fewest units at risk at a death up to B50, from lifelines' event table
+    table = km.event_table
+    deaths = table[(table["observed"] > 0) & (table.index <= km.median_survival_time_)]
+    assert fleet["b50_fewest_at_risk"] == int(deaths["at_risk"].min())
 
 
 def test_b_life_not_reached_is_empty():

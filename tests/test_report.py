@@ -549,3 +549,19 @@ def test_replacement_table_shows_the_ages_and_the_caution(tmp_path):
     assert "37 units in service are already at or past the whole fleet's best age (10.0 years" in text
     assert "planned replacement does not pay" in text
     assert "never replaces, inspections, manufacturer instructions, local codes and licensed engineering" in text
+
+
+def test_b_lives_on_few_units_are_flagged(tmp_path):
+    from wearcast.lifestats import life_statistics
+
+    table = life_table()
+    stats = life_statistics(table, ["site"])
+    stats["b10_fewest_at_risk"] = 50
+    stats.loc[1, "b10_fewest_at_risk"] = 3
+    inputs = ReportInputs(title="Few", as_of="2026-11-30", life_table=table, group_by="site", life_statistics=stats)
+    text = " ".join(_parse(build_report(inputs, tmp_path / "r")["report"].read_text(encoding="utf-8")).text)
+    assert f"Read with care: B10 of {stats.loc[1, 'group']} rest on fewer than 10 units" in text
+    stats["b10_fewest_at_risk"] = 50
+    plain = ReportInputs(title="Few", as_of="2026-11-30", life_table=table, group_by="site", life_statistics=stats)
+    assert "Read with care" not in " ".join(_parse(build_report(plain, tmp_path / "p")["report"].read_text(
+        encoding="utf-8")).text)

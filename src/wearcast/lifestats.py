@@ -78,6 +78,18 @@ def b_life(entry, exit, event, percent: float, level: float = DEFAULT_LEVEL) -> 
     return _b_life_from(product_limit_survival(entry, exit, event, level=level), percent)
 
 
+def _fewest_at_risk(curve: dict, age: float) -> int | None:
+    """The smallest number of units at risk at a failure age up to ``age`` (None: not reached).
+
+    With late entry the young ages of the curve can rest on a handful of units; a
+    B-life read there moves a lot with one failure more or less.
+    """
+    if not np.isfinite(age):
+        return None
+    upto = curve["age"] <= age
+    return int(curve["at_risk"][upto].min()) if upto.any() else None
+
+
 def _b_life_from(curve: dict, percent: float) -> tuple[float, float, float]:
     if not 0.0 < percent < 100.0:
         raise ValueError(f"a B-life percentage must be between 0 and 100, got {percent!r}")
@@ -144,7 +156,7 @@ def life_statistics(table: LifeTable, group_by: Sequence[str] = (), *,
     Columns: ``group_by``, ``group``, ``units``, ``lives``, ``failures``,
     ``suspensions``, ``time_at_risk_days``, ``mtbf_days``, ``mtbf_low_days``,
     ``mtbf_high_days``, for each ``p`` in ``b_lives`` ``b<p>_days``,
-    ``b<p>_low_days``, ``b<p>_high_days``, ``weibull_shape`` (+ ``_low``,
+    ``b<p>_low_days``, ``b<p>_high_days``, ``b<p>_fewest_at_risk``, ``weibull_shape`` (+ ``_low``,
     ``_high``), ``weibull_scale_days`` (+ ``_low_days``, ``_high_days``), then
     ``observed_from_age_days`` and ``level``. See the module docstring for the definitions.
     """
@@ -171,7 +183,8 @@ def _group_record(rows: _Rows, key: tuple[str, str], idx: np.ndarray, b_lives: S
     for p in b_lives:
         name = f"b{_plain(p)}"
         estimate, low, high = _b_life_from(curve, p)
-        record.update({f"{name}_days": estimate, f"{name}_low_days": low, f"{name}_high_days": high})
+        record.update({f"{name}_days": estimate, f"{name}_low_days": low, f"{name}_high_days": high,
+                       f"{name}_fewest_at_risk": _fewest_at_risk(curve, estimate)})
     weibull = fit_weibull(entry, exit_, event, level=level)
     record.update(weibull_shape=weibull["shape"], weibull_shape_low=weibull["shape_low"],
                   weibull_shape_high=weibull["shape_high"], weibull_scale_days=weibull["scale"],

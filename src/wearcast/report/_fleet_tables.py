@@ -74,6 +74,7 @@ def life_statistics_table(stats: pd.DataFrame | None) -> list[str]:
     if "weibull_shape" in frame.columns:
         shape_fmt = lambda v: h.fmt_number(v, 2)  # noqa: E731
         columns.append(h.Column("Weibull β", "weibull_shape", render=with_bounds("weibull_shape", shape_fmt, "")))
+    thin = _thin_b_lives(frame)
     conditional = frame["observed_from_age_days"].max() if "observed_from_age_days" in frame.columns else 0.0
     caveat = (" Some groups have no unit recorded from new, so their B-lives are conditional on reaching the "
               "youngest recorded age (observed_from_age_days in life_statistics.csv)." if conditional and conditional > 0 else "")
@@ -88,8 +89,22 @@ def life_statistics_table(stats: pd.DataFrame | None) -> list[str]:
             "the B-lives over the MTBF. Weibull β (shape): from a Weibull distribution fitted to the same lives "
             "(late entry respected); above 1 the failure rate rises with age (wear-out), below 1 it falls "
             f"(early-life failures), near 1 it is constant. Bounds are {level * 100:.0f} % intervals for sampling "
-            f"only (the figure's band is 95 %).{caveat}{_shape_sentence(frame[is_fleet])}"),
+            f"only (the figure's band is 95 %).{caveat}{thin}{_shape_sentence(frame[is_fleet])}"),
     ]
+
+
+def _thin_b_lives(frame: pd.DataFrame, minimum: int = 10) -> str:
+    """A sentence naming the B-lives that rest on fewer than ``minimum`` units at risk at some age."""
+    notes = []
+    for col in [c for c in frame.columns if c.endswith("_fewest_at_risk")]:
+        fewest = pd.to_numeric(frame[col], errors="coerce")
+        thin = frame.loc[fewest < minimum, "label"].astype(str).tolist()
+        if thin:
+            notes.append(f"{col[:-len('_fewest_at_risk')].upper()} of {', '.join(thin)}")
+    if not notes:
+        return ""
+    return (f" Read with care: {'; '.join(notes)} rest on fewer than {minimum} units under observation at some "
+            "younger age (late entry leaves few young units on record), so one failure more or less moves them.")
 
 
 def _shape_sentence(fleet: pd.DataFrame) -> str:
