@@ -29,7 +29,8 @@ def describe_ranking(ranked, top: int = 10) -> list[str]:
     help=command_help(
         "Run the whole job: check the export, choose and fit the model, rank every unit in "
         "service by its probability of failure within each horizon with stability intervals "
-        "from bootstrap refits, forecast fleet failures and write report.html.",
+        "from bootstrap refits, forecast fleet failures (also by failure mode, for spares) and write "
+        "report.html.",
         "wearcast rank fleet.toml --out runs/2026-11 --jobs 2",
     ),
 )
