@@ -504,8 +504,8 @@ def _ms(pair) -> str:
 def render_real(results: list[dict]) -> str:
     lines = []
     summary_rows = []
-    for r in results:
-        s = summarise_dataset(r)
+    summaries = [(r["dataset"], summarise_dataset(r)) for r in results]
+    for r, (_, s) in zip(results, summaries):
         lines.append(f"#### {r['dataset']} ({r['library']}): {r['source']}")
         lines.append(f"{r['units']} units, {r['rows']} rows, {r['failures']} failures, {r['delayed']} late "
                      f"entries, {r['covariates']} covariates; entry: {r['entry']}. "
@@ -535,50 +535,40 @@ def render_real(results: list[dict]) -> str:
     head = ["| dataset | best peer (Harrell) | gap | best peer (trunc.) | gap | target (gap ≥ −0.01) "
             "| gap, time-dependent C (start/stop data) |",
             "|---|---|---|---|---|---|---|", *summary_rows, ""]
-    return "\n".join(head + _diagnostic(results) + lines)
+    return "\n".join(head + _diagnostic(summaries) + lines)
 
 
-def _diagnostic_reading(results: list[dict]) -> list[str]:
-    """Which gaps no selection rule over wearcast's candidates could close, and which rule wins where."""
-    unreachable, rule_only, mean_only = [], [], []
-    for r in results:
-        s = summarise_dataset(r)
-        d = s.get("diagnostic")
-        if not d:
-            continue
-        peer = s["stats"][s["best_peer_harrell"]]["harrell"][0]
-        one_se_ok = s["stats"]["wearcast"]["harrell"][0] - peer >= -TARGET_GAP
-        mean_ok = d["best_inner_mean"] - peer >= -TARGET_GAP
-        if d["hindsight_c"] - peer < -TARGET_GAP:
-            unreachable.append(r["dataset"])
-        if one_se_ok and not mean_ok:
-            rule_only.append(r["dataset"])
-        if mean_ok and not one_se_ok:
-            mean_only.append(r["dataset"])
-    words = lambda names: ", ".join(names) or "none"  # noqa: E731
-    return [f"Even the best wearcast candidate in hindsight is more than {TARGET_GAP} below the best peer on: "
-            f"{words(unreachable)} (no selection rule over these candidates can reach the target there). "
-            f"Within {TARGET_GAP} with the one-SE rule but not with the best inner mean: {words(rule_only)}; "
-            f"the reverse: {words(mean_only)}."]
+def _diagnostic(summaries: list[tuple[str, dict]]) -> list[str]:
+    """How much of each gap is the parsimony rule, how much the noise of choosing on inner folds.
 
-
-def _diagnostic(results: list[dict]) -> list[str]:
-    """How much of each gap is the parsimony rule, how much the noise of choosing on inner folds."""
-    rows = []
-    for r in results:
-        s = summarise_dataset(r)
+    ``summaries``: (dataset name, :func:`summarise_dataset` result) pairs.
+    """
+    rows, unreachable, rule_only, mean_only = [], [], [], []
+    for name, s in summaries:
         d = s.get("diagnostic")
         if not d:
             continue
         peer = s["stats"][s["best_peer_harrell"]]["harrell"][0]
         ours = s["stats"]["wearcast"]["harrell"][0]
-        rows.append(f"| {r['dataset']} | {ours:.3f} ({ours - peer:+.3f}) | {d['best_inner_mean']:.3f} "
+        rows.append(f"| {name} | {ours:.3f} ({ours - peer:+.3f}) | {d['best_inner_mean']:.3f} "
                     f"({d['best_inner_mean'] - peer:+.3f}) | {d['hindsight']} {d['hindsight_c']:.3f} "
                     f"({d['hindsight_c'] - peer:+.3f}) | {s['best_peer_harrell']} {peer:.3f} |")
+        one_se_ok = ours - peer >= -TARGET_GAP
+        mean_ok = d["best_inner_mean"] - peer >= -TARGET_GAP
+        if d["hindsight_c"] - peer < -TARGET_GAP:
+            unreachable.append(name)
+        if one_se_ok and not mean_ok:
+            rule_only.append(name)
+        if mean_ok and not one_se_ok:
+            mean_only.append(name)
     if not rows:
         return []
+    words = lambda names: ", ".join(names) or "none"  # noqa: E731
     return ["#### Where the gaps come from (Harrell C, mean over the outer folds; gap to the best peer)", "",
-            *_diagnostic_reading(results), "",
+            f"Even the best wearcast candidate in hindsight is more than {TARGET_GAP} below the best peer on: "
+            f"{words(unreachable)} (no selection rule over these candidates can reach the target there). "
+            f"Within {TARGET_GAP} with the one-SE rule but not with the best inner mean: {words(rule_only)}; "
+            f"the reverse: {words(mean_only)}.", "",
             "One-SE choice: what `wearcast fit` picks (the issue's rule). Best inner mean: the candidate with "
             "the highest inner-CV mean, no parsimony. Best candidate in hindsight: the wearcast candidate "
             "with the best mean on the outer folds themselves, which no rule can know in advance.", "",
