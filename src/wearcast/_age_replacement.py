@@ -59,9 +59,8 @@ def best_replacement_age(shape: float, scale: float, cost_planned: float, cost_f
     if shape <= 1.0 or cost_failure <= cost_planned:
         return out
     f = lambda x: float(cost_rate(scale * np.exp(x), shape, scale, cost_planned, cost_failure))  # noqa: E731
-    lo, hi = np.log(1e-4), np.log(20.0)
-    grid = np.linspace(lo, hi, 400)
-    values = np.array([f(x) for x in grid])
+    grid = np.linspace(np.log(1e-4), np.log(20.0), 400)  # log(age / scale)
+    values = cost_rate(scale * np.exp(grid), shape, scale, cost_planned, cost_failure)
     i = int(np.argmin(values))
     if i == len(grid) - 1 or values[i] >= rtf * (1.0 - 1e-9):
         return out  # keeps falling toward old ages, or never beats running to failure

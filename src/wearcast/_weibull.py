@@ -20,12 +20,7 @@ import numpy as np
 from scipy.stats import norm
 
 
-def _terms(entry, exit, event, u: float, v: float):
-    with np.errstate(over="ignore", invalid="ignore"):  # a far trial step overflows; the line search rejects it
-        return _raw_terms(entry, exit, u, v)
-
-
-def _raw_terms(entry, exit, u: float, v: float):
+def _terms(entry, exit, u: float, v: float):
     k = np.exp(v)
     L = np.log(exit) - u
     late = entry > 0
@@ -38,16 +33,15 @@ def _raw_terms(entry, exit, u: float, v: float):
 def weibull_loglik(entry, exit, event, u: float, v: float) -> float:
     """Log-likelihood at ``u = log scale``, ``v = log shape``."""
     entry, exit, event = _arrays(entry, exit, event)
-    k, L, L0, e, e0 = _terms(entry, exit, event, u, v)
-    d = event.astype(float)
-    with np.errstate(over="ignore", invalid="ignore"):
-        return float(np.sum(d * (v + k * L - np.log(exit)) - e + e0))
+    with np.errstate(over="ignore", invalid="ignore"):  # a far trial step overflows; the line search rejects it
+        k, L, L0, e, e0 = _terms(entry, exit, u, v)
+        return float(np.sum(event * (v + k * L - np.log(exit)) - e + e0))
 
 
 def weibull_score_hessian(entry, exit, event, u: float, v: float) -> tuple[np.ndarray, np.ndarray]:
     """Gradient (2,) and Hessian (2, 2) of the log-likelihood in ``(u, v)``."""
     entry, exit, event = _arrays(entry, exit, event)
-    k, L, L0, e, e0 = _terms(entry, exit, event, u, v)
+    k, L, L0, e, e0 = _terms(entry, exit, u, v)
     d = event.astype(float)
     kL, kL0 = k * L, k * L0
     g_u = np.sum(-d * k + k * e - k * e0)
