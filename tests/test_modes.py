@@ -45,6 +45,8 @@ def test_fleet_mix_and_shrunk_level_mix_by_hand():
     for level, part in shares.fillna({"level": "fleet"}).groupby("level"):
         assert part["share"].sum() == pytest.approx(1.0), level
     # without shrinkage the level keeps its own mix
+    # failures without any recorded mode give no mix to split by
+    assert mode_shares(_table({"packed": ["", ""]}, {"packed": 1})).empty
     raw = mode_shares(table, by="seal", prior_failures=0.0)
     assert raw.loc[(raw["level"] == "mech") & (raw["mode"] == "bearing"), "share"].item() == pytest.approx(2 / 3)
 

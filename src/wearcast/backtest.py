@@ -45,7 +45,8 @@ from wearcast.io import load_export
 from wearcast.lifetable import LifeTable
 from wearcast.metrics import harrell_c
 from wearcast.models.base import SurvivalModel
-from wearcast.modes import clean_modes, forecast_for_units
+from wearcast.modes import clean_modes, forecast_for_units, mode_shares
+from wearcast.ranking import probability_column
 
 BASELINE = "cox"
 
@@ -227,6 +228,7 @@ def run_backtest(
         _check_not_after(fit_table, day)
         later = load_export(config, as_of=end).table
         outcome = window_outcomes(fit_table, later, horizon_days)
+        shares = mode_shares(fit_table, by=config.ranking.modes_by, prior_failures=config.ranking.mode_prior_failures)
         open_rows = fit_table.in_service()
         X = open_rows.X
         age = open_rows.exit
@@ -245,8 +247,7 @@ def run_backtest(
                          **score_origin(p, outcome, horizon_days, top_k), **forecast})
             unit_frames.append(outcome.assign(origin=day, model=name, probability=p))
             mode_rows += [{"origin": day, "model": name, **r}
-                          for r in mode_check(fit_table, p, outcome, horizon_days, config.ranking.modes_by,
-                                              config.ranking.mode_prior_failures)]
+                          for r in mode_check(fit_table, shares, p, outcome, horizon_days, config.ranking.modes_by)]
     per_origin = pd.DataFrame(rows)
     per_mode = pd.DataFrame(mode_rows, columns=["origin", "model", *MODE_COLUMNS])
     _add_cox_lift(per_origin, horizon_days, top_k)
@@ -266,17 +267,18 @@ MODE_COLUMNS = ["mode", "expected_failures", "chance_only_low", "chance_only_hig
                 "inside_chance"]
 
 
-def mode_check(fit_table: LifeTable, p: np.ndarray, outcome: pd.DataFrame, horizon_days: int,
-               modes_by: str | None, prior_failures: float) -> list[dict]:
+def mode_check(fit_table: LifeTable, shares: pd.DataFrame, p: np.ndarray, outcome: pd.DataFrame,
+               horizon_days: int, modes_by: str | None) -> list[dict]:
     """The forecast by failure mode made at the origin against the modes that failed in the window.
 
-    One dict per mode (modes of the fit-time history first, then any mode seen only in the
-    window, with nothing expected); empty when the history records no mode.
+    ``shares``: the mode mix as of the origin (:func:`wearcast.modes.mode_shares`). One dict per
+    mode (modes of the fit-time history first, then any mode seen only in the window, with
+    nothing expected); empty when the history records no mode.
     """
-    units = pd.DataFrame({f"p_fail_{float(horizon_days):g}d": np.asarray(p, float)})
-    forecast = forecast_for_units(fit_table, units, [horizon_days], modes_by, prior_failures)
-    if forecast is None:
+    if shares.empty:
         return []
+    units = pd.DataFrame({probability_column(horizon_days): np.asarray(p, float)})
+    forecast = forecast_for_units(fit_table, units, [horizon_days], shares, modes_by)
     observed = outcome.loc[outcome["failed"].to_numpy(bool), "mode"].value_counts()
     out = []
     for row in forecast.itertuples(index=False):

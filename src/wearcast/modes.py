@@ -38,7 +38,7 @@ from wearcast import _atomic
 from wearcast._poisson_binomial import count_pmf, pmf_quantile
 from wearcast.exceptions import ConfigError
 from wearcast.lifetable import group_labels, group_members, level_labels
-from wearcast.ranking import plain_number
+from wearcast.ranking import plain_number, probability_column
 from wearcast.resample import INTERVAL
 
 MODE_FORECAST_FILE = "mode_forecast.csv"
@@ -82,12 +82,13 @@ def mode_shares(table, by: str | None = None, prior_failures: float = 10.0) -> p
 
     Columns: ``level`` (empty, None, on the fleet's rows), ``mode``,
     ``failures`` (recorded), ``share``. Modes are ordered by their fleet
-    count, most frequent first. Empty when the table has no failures.
+    count, most frequent first. Empty when no failure has a recorded mode
+    (there is then no mix to split by).
     """
     frame = table.frame
     check_modes_by(frame, by, prior_failures)
     modes = _failure_modes(frame)
-    if modes.empty:
+    if (modes == NOT_RECORDED).all():
         return pd.DataFrame(columns=_SHARE_COLUMNS)
     fleet_counts = modes.value_counts()
     order = sorted(fleet_counts.index, key=lambda m: (-fleet_counts[m], m))
@@ -136,7 +137,7 @@ def mode_forecast(units: pd.DataFrame, horizons_days: Sequence[float], shares: p
     records = []
     for (column, level), idx in members:
         for h in horizons_days:
-            p = units[f"p_fail_{float(h):g}d"].to_numpy(float)[idx]
+            p = units[probability_column(h)].to_numpy(float)[idx]
             total = float(p.sum())
             for k, mode in enumerate(order):
                 pm = p * s[idx, k]
@@ -149,19 +150,18 @@ def mode_forecast(units: pd.DataFrame, horizons_days: Sequence[float], shares: p
     return pd.DataFrame.from_records(records, columns=columns)
 
 
-def forecast_for_units(table, units: pd.DataFrame, horizons_days: Sequence[float], by: str | None = None,
-                       prior_failures: float = 10.0, group_by: Sequence[str] = ()) -> pd.DataFrame | None:
-    """The forecast by mode for ``units`` (in the order of ``table.in_service()``, with their
-    ``p_fail_<h>d``), or None when the history records no failure mode. Adds the ``by`` column
-    from the units' open rows when ``units`` lacks it."""
-    shares = mode_shares(table, by=by, prior_failures=prior_failures)
-    if shares.empty or set(shares["mode"]) == {NOT_RECORDED}:
-        return None
+def forecast_for_units(table, units: pd.DataFrame, horizons_days: Sequence[float], shares: pd.DataFrame,
+                       by: str | None = None, group_by: Sequence[str] = ()) -> pd.DataFrame:
+    """:func:`mode_forecast` for ``units`` of ``table`` (with their ``p_fail_<h>d``; the in-service
+    units, by ``unit_id`` or else in the order of ``table.in_service()``), taking the ``by``
+    column from the units' open rows when ``units`` lacks it."""
     if by is not None and by not in units.columns:
         open_rows = table.in_service().frame
-        by_unit = pd.Series(open_rows[by].to_numpy(), index=open_rows["unit_id"].astype(str).to_numpy())
-        units = units.assign(**{by: by_unit.reindex(units["unit_id"].astype(str)).to_numpy()}) \
-            if "unit_id" in units.columns else units.assign(**{by: open_rows[by].to_numpy()})
+        if "unit_id" in units.columns:
+            by_unit = pd.Series(open_rows[by].to_numpy(), index=open_rows["unit_id"].astype(str).to_numpy())
+            units = units.assign(**{by: by_unit.reindex(units["unit_id"].astype(str)).to_numpy()})
+        else:
+            units = units.assign(**{by: open_rows[by].to_numpy()})
     return mode_forecast(units, horizons_days, shares, by=by, group_by=group_by)
 
 

@@ -139,12 +139,12 @@ def rank_stage(config: Config, out_dir: Path, state: JobState) -> dict:
 
 def _mode_forecast(table, ranked_units, section, group_by):
     """(mode_forecast frame, summary entry), or None when no failure has a recorded mode."""
-    from wearcast.modes import forecast_for_units, mode_mix_by_age
+    from wearcast.modes import forecast_for_units, mode_mix_by_age, mode_shares
 
-    frame = forecast_for_units(table, ranked_units, section.horizons_days, section.modes_by,
-                               section.mode_prior_failures, group_by)
-    if frame is None:
+    shares = mode_shares(table, by=section.modes_by, prior_failures=section.mode_prior_failures)
+    if shares.empty:
         return None
+    frame = forecast_for_units(table, ranked_units, section.horizons_days, shares, section.modes_by, group_by)
     mix = mode_mix_by_age(table)
     return frame, {"modes_by": section.modes_by, "mode_prior_failures": section.mode_prior_failures,
                    "mix_by_age_p_value": mix["p_value"], "mix_by_age": mix["statement"]}

@@ -47,8 +47,9 @@ def main_probability_column(ranked: pd.DataFrame) -> str | None:
     return max(cols, key=lambda c: float(c[len("p_fail_"):-1])) if cols else None
 
 
-def _horizon_label(h) -> str:
-    return f"{h:g}d"
+def probability_column(h) -> str:
+    """The ranked list's column of P(fail within ``h`` days): ``p_fail_90d``."""
+    return f"p_fail_{float(h):g}d"
 
 
 def describe_drivers(contributions: pd.DataFrame, X: pd.DataFrame, categorical: Sequence[str],
@@ -94,14 +95,14 @@ def describe_drivers(contributions: pd.DataFrame, X: pd.DataFrame, categorical: 
     return out
 
 
-def _interval_columns(frame, h_label, point, refits, col) -> None:
-    frame[f"p_fail_{h_label}"] = point
+def _interval_columns(frame, name, point, refits, col) -> None:
+    frame[name] = point
     if refits is None:
-        frame[f"p_fail_{h_label}_low"] = np.nan
-        frame[f"p_fail_{h_label}_high"] = np.nan
+        frame[f"{name}_low"] = np.nan
+        frame[f"{name}_high"] = np.nan
     else:
-        frame[f"p_fail_{h_label}_low"] = refits.p_low[:, col]
-        frame[f"p_fail_{h_label}_high"] = refits.p_high[:, col]
+        frame[f"{name}_low"] = refits.p_low[:, col]
+        frame[f"{name}_high"] = refits.p_high[:, col]
 
 
 def _check_refits(refits: RefitSummary, ids, horizons, rank_h, groups) -> None:
@@ -161,7 +162,7 @@ def rank_units(
     units["age_days"] = ages
     units["age_years"] = ages / DAYS_PER_YEAR
     for j, h in enumerate(horizons):
-        _interval_columns(units, _horizon_label(h), p[:, j], refits, j)
+        _interval_columns(units, probability_column(h), p[:, j], refits, j)
     units["rank"] = ranks
     share_col, stable_col = f"top{top_k}_share", f"top{top_k}_stable"
     if refits is None:
