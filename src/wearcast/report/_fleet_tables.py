@@ -43,37 +43,25 @@ def life_statistics_table(stats: pd.DataFrame | None) -> list[str]:
     if stats is None:
         return []
     level = float(stats["level"].iloc[0]) if "level" in stats.columns else 0.9
-    frame = stats.copy()
-    is_fleet = _is_fleet(frame)
-    frame["label"] = np.where(is_fleet, "whole fleet", frame["group"].astype(str))
+    frame, is_fleet = _labelled(stats)
     by_names = sorted(set(frame.loc[~is_fleet, "group_by"].astype(str)))
     # own field names, so a reader's data-field lookup does not confuse them with the fleet facts above
     frame["group_failures"] = frame["failures"]
     frame["group_unit_years"] = frame["time_at_risk_days"] / 365.25
 
-    def with_bounds(name, fmt=h.fmt_years, unit="_days"):
-        """One cell: the estimate, then its bounds in grey ("≥" when the upper one is beyond the records)."""
-        def render(row):
-            value, low, high = (row.get(f"{name}{part}{unit}") for part in ("", "_low", "_high"))
-            shown = h.number(value, fmt, f"{name}{unit}")
-            if h.is_missing(low):
-                return shown
-            lower = h.number(low, fmt, f"{name}_low{unit}")
-            spread = f"≥ {lower}" if h.is_missing(high) else f"{lower}–{h.number(high, fmt, f'{name}_high{unit}')}"
-            return f'{shown} <span class="muted">({spread})</span>'
-        return render
-
     group_header = f"Group ({', '.join(by_names)})" if by_names else "Group"
     columns = [h.Column(group_header, "label", numeric=False), h.Column("Failures", "group_failures", h.fmt_count),
                h.Column("Unit-years", "group_unit_years", lambda v: "–" if h.is_missing(v) else f"{float(v):,.0f}"),
-               h.Column("MTBF", "mtbf_days", render=with_bounds("mtbf"))]
+               h.Column("MTBF", "mtbf_days", render=_with_bounds("mtbf_days", "mtbf_low_days", "mtbf_high_days"))]
     for name in sorted({c[:-len("_days")] for c in frame.columns
                         if c.startswith("b") and c.endswith("_days") and "_low" not in c and "_high" not in c},
                        key=lambda n: float(n[1:].replace("_", "."))):
-        columns.append(h.Column(f"{name.upper()} life", f"{name}_days", render=with_bounds(name)))
+        columns.append(h.Column(f"{name.upper()} life", f"{name}_days",
+                                render=_with_bounds(f"{name}_days", f"{name}_low_days", f"{name}_high_days")))
     if "weibull_shape" in frame.columns:
         shape_fmt = lambda v: h.fmt_number(v, 2)  # noqa: E731
-        columns.append(h.Column("Weibull β", "weibull_shape", render=with_bounds("weibull_shape", shape_fmt, "")))
+        columns.append(h.Column("Weibull β", "weibull_shape", render=_with_bounds(
+            "weibull_shape", "weibull_shape_low", "weibull_shape_high", shape_fmt)))
     thin = _thin_b_lives(frame)
     conditional = frame["observed_from_age_days"].max() if "observed_from_age_days" in frame.columns else 0.0
     caveat = (" Some groups have no unit recorded from new, so their B-lives are conditional on reaching the "
@@ -91,6 +79,24 @@ def life_statistics_table(stats: pd.DataFrame | None) -> list[str]:
             f"(early-life failures), near 1 it is constant. Bounds are {level * 100:.0f} % intervals for sampling "
             f"only (the figure's band is 95 %).{caveat}{thin}{_shape_sentence(frame[is_fleet])}"),
     ]
+
+
+def _labelled(frame: pd.DataFrame) -> tuple[pd.DataFrame, pd.Series]:
+    """A copy with a ``label`` column ("whole fleet" or the group's level), and the fleet-row mask."""
+    is_fleet = _is_fleet(frame)
+    return frame.assign(label=np.where(is_fleet, "whole fleet", frame["group"].astype(str))), is_fleet
+
+
+def _with_bounds(value: str, low: str, high: str, fmt=h.fmt_years):
+    """A cell renderer: the estimate, then its bounds in grey ("≥" when the upper one is beyond the records)."""
+    def render(row):
+        shown = h.number(row.get(value), fmt, value)
+        if h.is_missing(row.get(low)):
+            return shown
+        lower = h.number(row.get(low), fmt, low)
+        spread = f"≥ {lower}" if h.is_missing(row.get(high)) else f"{lower}–{h.number(row.get(high), fmt, high)}"
+        return f'{shown} <span class="muted">({spread})</span>'
+    return render
 
 
 def _thin_b_lives(frame: pd.DataFrame, minimum: int = 10) -> str:
@@ -159,17 +165,13 @@ def replacement_table(ages: pd.DataFrame | None, summary: dict | None = None) ->
     """Best planned replacement age per group (replacement_ages.csv), with the cost model's limits."""
     if ages is None or ages.empty or "best_age_days" not in ages.columns:
         return []
-    frame = ages.copy()
-    is_fleet = _is_fleet(frame)
-    frame["label"] = np.where(is_fleet, "whole fleet", frame["group"].astype(str))
+    frame, _ = _labelled(ages)
+    with_bounds = _with_bounds("best_age_days", "age_low_days", "age_high_days")
 
     def age_cell(row):
         if h.is_missing(row.get("best_age_days")):
             return h.esc(row.get("reading", "none"))
-        mark = " *" if _unclear(row) else ""
-        return (f'{h.number(row["best_age_days"], h.fmt_years, "best_age_days")} <span class="muted">'
-                f'({h.number(row["age_low_days"], h.fmt_years, "age_low_days")}–'
-                f'{h.number(row["age_high_days"], h.fmt_years, "age_high_days")}){mark}</span>')
+        return with_bounds(row) + (" *" if _unclear(row) else "")
 
     columns = [h.Column("Group", "label", numeric=False),
                h.Column("Weibull β", "weibull_shape", lambda v: h.fmt_number(v, 2)),
