@@ -47,11 +47,10 @@ def check_stage(config: Config, out_dir: Path, state: JobState) -> dict:
     life_statistics.csv (MTBF, B-lives, Weibull per group), replacement_ages.csv
     (when [costs] are set) and check_summary.json."""
     from wearcast.io import load_export, write_check
-    import pandas as pd
-
     from wearcast.lifestats import fleet_headline, life_statistics, write_life_statistics
     from wearcast.modes import check_modes_by
     from wearcast.replacement import REPLACEMENT_FILE, check_costs, replacement_ages, write_replacement_ages
+    from wearcast.replacement import fleet_headline as replacement_headline
 
     state.export = load_export(config, quarantine_dir=out_dir)
     summary = write_check(state.export, out_dir)
@@ -65,14 +64,7 @@ def check_stage(config: Config, out_dir: Path, state: JobState) -> dict:
         ages = replacement_ages(stats, costs.planned_replacement, costs.failure,
                                 renewal=state.export.table.meta.get("renewal", "replace"))
         summary["replacement_ages_path"] = str(write_replacement_ages(ages, out_dir))
-        fleet = ages.iloc[0]
-        for key, col in (("fleet_best_replacement_age_days", "best_age_days"),
-                         ("fleet_replacement_age_low_days", "age_low_days"),
-                         ("fleet_replacement_age_high_days", "age_high_days"),
-                         ("fleet_replacement_saving", "saving")):
-            summary[key] = None if pd.isna(fleet[col]) else round(float(fleet[col]), 3)
-        summary["fleet_replacement_reading"] = fleet["reading"]
-        summary["fleet_wear_out_clear"] = bool(fleet["wear_out_clear"])
+        summary.update(replacement_headline(ages))
     # Paths inside the run folder are written relative to it, so a folder can be moved
     # (the monthly run renames its staging folder) and reruns elsewhere match byte for byte.
     on_disk = {k: (_relative(v, out_dir) if k.endswith("_path") else v) for k, v in summary.items()}

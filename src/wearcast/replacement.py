@@ -91,9 +91,20 @@ def replacement_ages(stats: pd.DataFrame, cost_planned: float, cost_failure: flo
     return pd.DataFrame.from_records(records, columns=COLUMNS)
 
 
+def fleet_headline(ages: pd.DataFrame) -> dict:
+    """The whole fleet's row (the first) as plain values for the check summary."""
+    fleet = ages.iloc[0]
+    out = {key: None if pd.isna(fleet[col]) else round(float(fleet[col]), 3)
+           for key, col in (("fleet_best_replacement_age_days", "best_age_days"),
+                            ("fleet_replacement_age_low_days", "age_low_days"),
+                            ("fleet_replacement_age_high_days", "age_high_days"),
+                            ("fleet_replacement_saving", "saving"))}
+    return out | {"fleet_replacement_reading": fleet["reading"], "fleet_wear_out_clear": bool(fleet["wear_out_clear"])}
+
+
 def write_replacement_ages(frame: pd.DataFrame, out_dir: str | Path) -> Path:
     """Write ``replacement_ages.csv`` atomically (ages as whole days); return its path."""
     return _atomic.write_csv(Path(out_dir) / REPLACEMENT_FILE, whole_days(frame))
 
 
-__all__ = ["REPLACEMENT_FILE", "check_costs", "replacement_ages", "write_replacement_ages"]
+__all__ = ["REPLACEMENT_FILE", "check_costs", "fleet_headline", "replacement_ages", "write_replacement_ages"]
