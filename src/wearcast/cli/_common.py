@@ -102,7 +102,9 @@ def mode_lines(modes) -> list[str]:
     """The whole fleet's expected failures by failure mode (modes.mode_forecast), a line per horizon."""
     if modes is None or len(modes) == 0:
         return []
-    fleet = modes[(modes["group_by"].astype(str) == "fleet") & (modes["group"].astype(str) == "all")]
+    from wearcast.lifetable import FLEET
+
+    fleet = modes[(modes["group_by"].astype(str) == FLEET[0]) & (modes["group"].astype(str) == FLEET[1])]
     lines = ["expected failures by failure mode (chance-only 90 % interval):"]
     for h, part in fleet.groupby("horizon_days", sort=True):
         cells = ", ".join(f"{row['mode']} {float(row['expected_failures']):.1f} "

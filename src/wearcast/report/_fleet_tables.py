@@ -6,13 +6,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from wearcast.lifetable import FLEET
 from wearcast.report import _html as h
-
-
-def _is_fleet(frame: pd.DataFrame) -> pd.Series:
-    """The whole-fleet rows of a per-group output (``wearcast.lifetable.FLEET``)."""
-    return (frame["group_by"].astype(str) == FLEET[0]) & (frame["group"].astype(str) == FLEET[1])
+from wearcast.report import _normalise as norm
 
 
 def statistics(inputs, table) -> pd.DataFrame | None:
@@ -31,7 +26,7 @@ def fleet_weibull(stats: pd.DataFrame | None) -> tuple[float, float] | None:
     """(shape, scale in days) of the whole fleet's Weibull fit, when there is one."""
     if stats is None or "weibull_shape" not in stats.columns:
         return None
-    fleet = stats[_is_fleet(stats)]
+    fleet = stats[norm.is_fleet_row(stats)]
     if fleet.empty:
         return None
     shape, scale = float(fleet["weibull_shape"].iloc[0]), float(fleet["weibull_scale_days"].iloc[0])
@@ -83,7 +78,7 @@ def life_statistics_table(stats: pd.DataFrame | None) -> list[str]:
 
 def _labelled(frame: pd.DataFrame) -> tuple[pd.DataFrame, pd.Series]:
     """A copy with a ``label`` column ("whole fleet" or the group's level), and the fleet-row mask."""
-    is_fleet = _is_fleet(frame)
+    is_fleet = norm.is_fleet_row(frame)
     return frame.assign(label=np.where(is_fleet, "whole fleet", frame["group"].astype(str))), is_fleet
 
 
@@ -130,7 +125,7 @@ def mode_table(forecast: pd.DataFrame | None, summary: dict) -> list[str]:
     """Expected failures of each mode for the fleet, one column per horizon (mode_forecast.csv)."""
     if forecast is None or forecast.empty:
         return []
-    fleet = forecast[_is_fleet(forecast)]
+    fleet = forecast[norm.is_fleet_row(forecast)]
     if fleet.empty:
         return []
     horizons = sorted(fleet["horizon_days"].unique(), key=float)
