@@ -468,3 +468,23 @@ def test_grow_on_comes_from_the_config():
     section = config_from_dict({"model": {"forest": {"grow_on": "rows"}}}).model.forest
     assert SurvivalForest.from_config(section, seed=1).grow_on == "rows"
     assert SurvivalForest.from_config(config_from_dict({}).model.forest, seed=1).grow_on == "episodes"
+
+
+def test_one_routing_pass_scores_like_the_per_horizon_calls():
+    # score_units / fail_probabilities route the units once; they must equal the generic
+    # SurvivalModel path (cumulative hazard at the age and at age + h, one call each), bit for bit,
+    # with some ages before the grid's first age.
+    from wearcast.models.base import SurvivalModel
+
+    table = _truncated_weibull(400, seed=8)
+    forest = SurvivalForest(n_trees=15, seed=3).fit(table)
+    X = table.X.iloc[:150].reset_index(drop=True)
+    ages = np.r_[np.zeros(10), table.exit[10:150]]
+    horizons = [30, 90, 365]
+    log_risk, p = forest.score_units(X, ages, horizons)
+    generic = SurvivalModel.fail_probabilities(forest, X, ages, horizons)
+    np.testing.assert_array_equal(p, generic)
+    np.testing.assert_array_equal(forest.fail_probabilities(X, ages, horizons), generic)
+    np.testing.assert_allclose(np.exp(log_risk), forest.risk_score(X), rtol=1e-12)
+    hand = sum(risk[apply_tree(tree, forest._encode(X))] for tree, risk in zip(forest.trees_, forest.leaf_risks_))
+    np.testing.assert_allclose(forest.risk_score(X), hand / len(forest.trees_), rtol=1e-12)

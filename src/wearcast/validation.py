@@ -282,8 +282,9 @@ def _fit_and_predict(template: SurvivalModel, seed: int, train_table: LifeTable,
     """One (fold, model) cell: fit a fresh copy on the training units, predict the held-out ones."""
     model = template.unfitted_copy(seed)
     model.fit(train_table)
-    risk = np.asarray(model.risk_score(X_test), float)
-    p = np.asarray(model.fail_probabilities(X_test, entry_test, horizons), float)
+    # one scoring pass; the metrics use the risk score only through its order (log is fine)
+    risk, p = model.score_units(X_test, entry_test, horizons)
+    risk, p = np.asarray(risk, float), np.asarray(p, float)
     prob = {h: p[:, j] for j, h in enumerate(horizons)}
     return risk, prob, np.asarray(model.survival(X_test, brier_times), float)
 

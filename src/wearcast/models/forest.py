@@ -42,7 +42,7 @@ from wearcast.models._forest_leaves import (
 from wearcast.models._forest_oob import (
     MAX_SCORED_LIVES, OOBAccumulator, bootstrap_draw, harrell_c, last_rows_of_lives,
 )
-from wearcast.models.base import SurvivalModel
+from wearcast.models.base import SurvivalModel, conditional_failure_probability
 
 MODES = ("random_forest", "bagging")
 GROW_ON = ("episodes", "rows")
@@ -238,24 +238,44 @@ class SurvivalForest(SurvivalModel):
             raise ModelError("the forest is not fitted yet; call fit(table) or SurvivalForest.load(folder).")
         return encode(X, self.covariates_, self.levels_)
 
+    def _route(self, X: pd.DataFrame, ages: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Risk score (n,) and ``H(ages[i, j] | x_i)`` (n, k) in one pass of each tree.
+
+        ``ages``: days, shape (n, k); an age before the grid has ``H = 0``.
+        """
+        Xe = self._encode(X)
+        ages = np.asarray(ages, float).reshape(len(Xe), -1)
+        column = grid_column(self.grid_, ages)
+        inside = column >= 0
+        safe = np.where(inside, column, 0)
+        risk = np.zeros(len(Xe))
+        hazard_at = np.zeros(ages.shape)
+        for tree, hazard, leaf_risk in zip(self.trees_, self.leaf_hazards_, self.leaf_risks_):
+            leaf = apply_tree(tree, Xe)
+            risk += leaf_risk[leaf]
+            hazard_at += np.where(inside, hazard[leaf[:, None], safe], 0.0)
+        return risk / len(self.trees_), hazard_at / len(self.trees_)
+
     def risk_score(self, X: pd.DataFrame) -> np.ndarray:
         """Ensemble cumulative hazard summed over the grid ages, shape (n,)."""
-        Xe = self._encode(X)
-        total = np.zeros(len(Xe))
-        for tree, leaf_risk in zip(self.trees_, self.leaf_risks_):
-            total += leaf_risk[apply_tree(tree, Xe)]
-        return total / len(self.trees_)
+        return self._route(X, np.zeros((len(X), 0)))[0]
 
     def cumulative_hazard_at(self, X: pd.DataFrame, ages: np.ndarray) -> np.ndarray:
         """``H(age_i | x_i)``, shape (n,); ages in days, shape (n,) (step between grid ages)."""
-        Xe = self._encode(X)
-        column = grid_column(self.grid_, np.broadcast_to(np.asarray(ages, float), (len(Xe),)))
-        inside = column >= 0
-        total = np.zeros(len(Xe))
-        for tree, hazard in zip(self.trees_, self.leaf_hazards_):
-            leaf = apply_tree(tree, Xe[inside])
-            total[inside] += hazard[leaf, column[inside]]
-        return total / len(self.trees_)
+        ages = np.broadcast_to(np.asarray(ages, float), (len(X),))
+        return self._route(X, ages[:, None])[1][:, 0]
+
+    def fail_probabilities(self, X: pd.DataFrame, age: np.ndarray, horizons_days) -> np.ndarray:
+        """P(fail within each horizon | working at ``age``), shape (n, H); the trees route ``X`` once."""
+        return self.score_units(X, age, horizons_days)[1]
+
+    def score_units(self, X: pd.DataFrame, age: np.ndarray, horizons_days) -> tuple[np.ndarray, np.ndarray]:
+        """``(log risk score (n,), P(fail within each horizon) (n, H))`` from one routing pass."""
+        age = np.broadcast_to(np.asarray(age, float), (len(X),))
+        ends = age[:, None] + np.asarray([float(h) for h in horizons_days])[None, :]
+        risk, hazard = self._route(X, np.column_stack([age, ends]))
+        p = conditional_failure_probability(hazard[:, :1], hazard[:, 1:])
+        return np.log(np.maximum(risk, np.finfo(float).tiny)), p
 
     def cumulative_hazard(self, X: pd.DataFrame, times: np.ndarray) -> np.ndarray:
         """``H(t_j | x_i)`` on a shared age grid, shape (n, m), float64."""
