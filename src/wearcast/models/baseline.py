@@ -49,6 +49,10 @@ class BaselineHazard:
     #: linearly between failure ages; equal at them; see _hazard.linear_at).
     interpolation: str = "step"
 
+    def __post_init__(self):
+        if self.interpolation not in ("step", "linear"):
+            raise ValueError(f"interpolation must be 'step' or 'linear'; got {self.interpolation!r}")
+
     # -- estimation ---------------------------------------------------------
     @classmethod
     def estimate(
@@ -66,8 +70,6 @@ class BaselineHazard:
         """Estimate from rows: ``entry``/``exit`` ages (days), ``event`` (bool),
         ``eta`` log relative risk (default 0), case ``weights``, ``strata``
         labels; all shape (n,). Returns a new object."""
-        if interpolation not in ("step", "linear"):
-            raise ValueError(f"interpolation must be 'step' or 'linear'; got {interpolation!r}")
         return cls(ties=ties, interpolation=interpolation).fit(entry, exit, event, eta, weights=weights,
                                                                strata=strata)
 
@@ -77,14 +79,18 @@ class BaselineHazard:
         (:func:`prepare_risk_sets`, unstratified) and the rows' ``eta`` (n,);
         saves sorting the rows again. Same values as :meth:`estimate` with the
         risk sets' ties and weights."""
-        if interpolation not in ("step", "linear"):
-            raise ValueError(f"interpolation must be 'step' or 'linear'; got {interpolation!r}")
         if rs.stratum_labels.size != 1:
             raise ValueError("from_risk_sets takes unstratified risk sets; use estimate(..., strata=) instead")
-        out = cls(ties=rs.ties, interpolation=interpolation)
-        out.ages = {_SINGLE: rs.fail_age.copy()}
-        out.cumhaz = {_SINGLE: np.cumsum(baseline_hazard_increments(rs, eta))}
-        return out
+        return cls(ties=rs.ties, interpolation=interpolation)._set_from_risk_sets(rs, eta, [_SINGLE])
+
+    def _set_from_risk_sets(self, rs, eta: np.ndarray, names) -> "BaselineHazard":
+        """Cumulative hazard per stratum from prepared risk sets; ``names[code]`` keys stratum ``code``."""
+        increments = baseline_hazard_increments(rs, eta)
+        for code, name in enumerate(names):
+            in_stratum = rs.fail_stratum == code
+            self.ages[name] = rs.fail_age[in_stratum]
+            self.cumhaz[name] = np.cumsum(increments[in_stratum])
+        return self
 
     def fit(self, entry, exit, event, eta=None, *, weights=None, strata=None, ties=None) -> "BaselineHazard":
         """Estimate in place (see :meth:`estimate`); returns self."""
@@ -112,11 +118,7 @@ class BaselineHazard:
                 self.cumhaz[str(label)] = cumhaz * np.exp(-shift)
         else:
             rs = prepare_risk_sets(entry, exit, event, strata=labels, weights=weights, ties="efron")
-            increments = baseline_hazard_increments(rs, eta)
-            for code, label in enumerate(rs.stratum_labels):
-                in_stratum = rs.fail_stratum == code
-                self.ages[str(label)] = rs.fail_age[in_stratum]
-                self.cumhaz[str(label)] = np.cumsum(increments[in_stratum])
+            self._set_from_risk_sets(rs, eta, [str(label) for label in rs.stratum_labels])
         return self
 
     # -- evaluation ---------------------------------------------------------
