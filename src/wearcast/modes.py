@@ -38,8 +38,8 @@ from wearcast import _atomic
 from wearcast._poisson_binomial import count_pmf, pmf_quantile
 from wearcast.exceptions import ConfigError
 from wearcast.lifetable import group_labels, group_members, level_labels
-from wearcast.ranking import plain_number, probability_column
-from wearcast.resample import INTERVAL
+from wearcast.ranking import probability_column
+from wearcast.resample import INTERVAL, plain_number
 
 MODE_FORECAST_FILE = "mode_forecast.csv"
 NOT_RECORDED = "(not recorded)"

@@ -20,7 +20,7 @@ from wearcast import _atomic
 from wearcast._poisson_binomial import EXACT_VARIANCE_LIMIT, count_pmf, pmf_quantile
 from wearcast.exceptions import ConfigError, ModelError
 from wearcast.lifetable import FLEET, group_labels, group_members
-from wearcast.resample import INTERVAL, RefitSummary, current_units, risk_ranks
+from wearcast.resample import INTERVAL, RefitSummary, current_units, plain_number, risk_ranks
 
 #: Days per year used for ``age_years``.
 DAYS_PER_YEAR = 365.25
@@ -221,11 +221,6 @@ def fleet_forecast(p: np.ndarray, groupings, horizons, refits: RefitSummary | No
     columns = ["group_by", "group", "horizon_days", "units", "expected_failures", "failures_low",
                "failures_high", "chance_only_low", "chance_only_high", "model_only_low", "model_only_high"]
     return pd.DataFrame.from_records(records, columns=columns)
-
-
-def plain_number(h: float):
-    """A horizon as written in outputs: 90 for 90.0, 0.5 stays 0.5."""
-    return int(h) if float(h).is_integer() else float(h)
 
 
 def _round(x, digits: int = 6):

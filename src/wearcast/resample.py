@@ -459,12 +459,13 @@ def bootstrap_refits(
     finally:
         if temporary is not None:
             temporary.cleanup()
-    return RefitSummary(unit_ids=unit_ids, horizons_days=tuple(_as_int(h) for h in horizons),
-                        rank_horizon_days=_as_int(rank_h), n_refits=n_refits, seed=int(seed),
+    return RefitSummary(unit_ids=unit_ids, horizons_days=tuple(plain_number(h) for h in horizons),
+                        rank_horizon_days=plain_number(rank_h), n_refits=n_refits, seed=int(seed),
                         top_k=int(top_k), fingerprint=fingerprint, computed=len(todo), **summary)
 
 
-def _as_int(h: float):
+def plain_number(h: float):
+    """A horizon as written in outputs: 90 for 90.0, 0.5 stays 0.5."""
     return int(h) if float(h).is_integer() else float(h)
 
 
