@@ -27,12 +27,16 @@ from wearcast.exceptions import ConfigError, DataError
 CORE_COLUMNS = ("unit_id", "life", "entry_age", "exit_age", "failed", "mode", "in_service")
 
 
-def draw_unit_counts(codes: np.ndarray, rng: np.random.Generator) -> np.ndarray:
-    """One bootstrap of whole units: how many times each unit code
-    0..max(``codes``) is drawn in n_units draws with replacement from ``rng``,
-    shape (n_units,) int64. ``codes``: (n_rows,) from :meth:`LifeTable.unit_codes`."""
-    n_units = int(codes.max()) + 1 if len(codes) else 0
+def unit_draw(n_units: int, rng: np.random.Generator) -> np.ndarray:
+    """One bootstrap of ``n_units`` units: how many times each is drawn in n_units
+    draws with replacement from ``rng``, shape (n_units,) int64 (0 = left out)."""
     return np.bincount(rng.integers(0, n_units, size=n_units), minlength=n_units)
+
+
+def draw_unit_counts(codes: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    """:func:`unit_draw` for the units of a table: each unit code 0..max(``codes``),
+    shape (n_units,) int64. ``codes``: (n_rows,) from :meth:`LifeTable.unit_codes`."""
+    return unit_draw(int(codes.max()) + 1 if len(codes) else 0, rng)
 
 
 def draw_unit_weights(codes: np.ndarray, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray]:
@@ -41,7 +45,7 @@ def draw_unit_weights(codes: np.ndarray, rng: np.random.Generator) -> tuple[np.n
     order) and each one's weight, the number of times its unit was drawn
     (float)."""
     codes = np.asarray(codes)
-    row_counts = draw_unit_counts(codes, rng)[codes] if len(codes) else np.zeros(0, np.int64)
+    row_counts = draw_unit_counts(codes, rng)[codes]
     rows = np.flatnonzero(row_counts > 0)
     return rows, row_counts[rows].astype(float)
 

@@ -23,6 +23,7 @@ import numpy as np
 from sksurv.metrics import concordance_index_censored
 
 from wearcast._metrics_concordance import truncated_concordance_counts
+from wearcast.lifetable import unit_draw
 
 MAX_SCORED_LIVES = 10_000
 
@@ -35,7 +36,7 @@ def bootstrap_draw(seed: int, n_units: int) -> tuple[np.ndarray, int]:
     random predictor subsets.
     """
     rng = np.random.default_rng(seed)
-    counts = np.bincount(rng.integers(0, n_units, size=n_units), minlength=n_units).astype(np.int32)
+    counts = unit_draw(n_units, rng).astype(np.int32)
     return counts, int(rng.integers(0, 2**31 - 1))
 
 
