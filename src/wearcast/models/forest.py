@@ -139,7 +139,7 @@ class SurvivalForest(SurvivalModel):
         """Build from a :class:`wearcast.config.ForestSection`."""
         return cls(section.mode, section.n_trees, section.predictors_per_split, section.min_events_per_leaf,
                    section.max_depth, section.time_grid_points, seed=seed, n_jobs=n_jobs,
-                   grow_on=getattr(section, "grow_on", "episodes"))
+                   grow_on=section.grow_on)
 
     def settings(self) -> dict:
         return {"mode": self.mode, "n_trees": self.n_trees, "predictors_per_split": self.predictors_per_split,
