@@ -18,6 +18,7 @@ from scipy import stats
 
 from wearcast import LifeTable
 from wearcast.exceptions import ModelError
+from wearcast.lifetable import group_members
 from wearcast.models.boosted import BoostedSurvivalTrees, BoostSettings
 from wearcast.models.cox import CoxBaseline
 from wearcast.ranking import describe_drivers, fleet_forecast, rank_units, write_ranking
@@ -153,7 +154,7 @@ def test_describe_drivers_words():
 def test_chance_only_interval_is_the_binomial_when_probabilities_are_equal():
     # Reference library: with equal p the Poisson-binomial is scipy.stats.binom.
     p = np.full((400, 1), 0.05)
-    f = fleet_forecast(p, [], (365.0,), None).iloc[0]
+    f = fleet_forecast(p, group_members([], len(p)), (365.0,), None).iloc[0]
     assert f["chance_only_low"] == stats.binom.ppf(0.05, 400, 0.05)
     assert f["chance_only_high"] == stats.binom.ppf(0.95, 400, 0.05)
     assert f["failures_low"] == f["chance_only_low"] and np.isnan(f["model_only_low"])

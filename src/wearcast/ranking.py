@@ -148,7 +148,8 @@ def rank_units(
         raise ConfigError(f"[ranking] stable_share must be in (0, 1]; got {stable_share}.")
     rows, ids, ages = current_units(table)
     groupings = group_labels(rows, group_by)
-    group_keys = [FLEET] + [(col, str(level)) for col, labels in groupings for level in sorted(set(labels))]
+    members = group_members(groupings, len(ids))
+    group_keys = [key for key, _ in members]
     if refits is not None:
         _check_refits(refits, ids, horizons, rank_h, group_keys)
     X = rows.loc[:, list(table.covariates)]
@@ -185,21 +186,21 @@ def rank_units(
         units[f"driver_{d + 1}"] = [t[d] if d < len(t) else "" for t in texts]
     units = units.sort_values("rank", kind="stable").reset_index(drop=True)
 
-    forecast = fleet_forecast(p, groupings, horizons, refits)
+    forecast = fleet_forecast(p, members, horizons, refits)
     summary = _summary(table, model, refits, horizons, rank_h, top_k, stable_share, units, forecast,
                        drivers_note)
     return RankedList(units, forecast, summary)
 
 
-def fleet_forecast(p: np.ndarray, groupings, horizons, refits: RefitSummary | None) -> pd.DataFrame:
+def fleet_forecast(p: np.ndarray, members, horizons, refits: RefitSummary | None) -> pd.DataFrame:
     """Expected failures per group and horizon with 5-95 % intervals.
 
     ``p``: (n, H) main-model probabilities. Chance-only interval: quantiles of
     the Poisson-binomial count given ``p``. Combined interval: quantiles of the
     refits' mixture of Poisson-binomial counts (``refits.count_pmf``). Model-only
-    interval: 5-95 % of the refits' expected counts.
+    interval: 5-95 % of the refits' expected counts. ``members``: the groups, from
+    :func:`wearcast.lifetable.group_members` (the whole fleet first), in the refits' order.
     """
-    members = group_members(groupings, len(p))
     records = []
     for g, ((column, level), idx) in enumerate(members):
         for j, h in enumerate(horizons):
