@@ -184,11 +184,13 @@ def model_settings(model) -> dict:
     return settings
 
 
-def refit_fingerprint(table, model, seed: int, n_refits: int, horizons_days, rank_horizon_days) -> str:
-    """SHA-256 naming everything a refit file depends on."""
+def refit_fingerprint(table, model, seed: int, n_refits: int, horizons_days, rank_horizon_days, *,
+                      table_key: str | None = None) -> str:
+    """SHA-256 naming everything a refit file depends on (``table_key``: :func:`table_hash`
+    of ``table`` when the caller has it already)."""
     key = {
         "format": _FORMAT_VERSION,
-        "table": table_hash(table),
+        "table": table_hash(table) if table_key is None else table_key,
         "model": model_settings(model),
         "seed": int(seed),
         "n_refits": int(n_refits),
@@ -237,7 +239,11 @@ class _SharedTable:
         self.key = key
         self.parts = (table.covariates, table.categorical, table.as_of)
         self.group_by = tuple(group_by)
-        table.frame.to_parquet(self.path, index=False)
+        # only what the workers read: the core and covariate columns, and the grouping ones
+        from wearcast.lifetable import CORE_COLUMNS
+
+        columns = list(dict.fromkeys([*CORE_COLUMNS, *table.covariates, *self.group_by]))
+        table.frame.loc[:, columns].to_parquet(self.path, index=False)
         self._inputs = None
 
     def __getstate__(self):
@@ -286,16 +292,17 @@ def _save_refit(folder: Path, fingerprint: str, result) -> None:
     _atomic.write_bytes(_refit_path(folder, index), buffer.getvalue())
 
 
-def _load_refit(folder: Path, index: int, fingerprint: str | None = None, shape=None):
-    """The refit's arrays, or None when the file is missing, damaged or stale."""
+def _load_refit(folder: Path, index: int, fingerprint: str | None = None, shape=None, *, with_pmfs: bool = False):
+    """The refit's ``p_fail`` and ``rank`` (and, with ``with_pmfs``, its stored per-group
+    count pmfs and their ``members_key``), or None when the file is missing, damaged or stale."""
     path = _refit_path(folder, index)
     try:
         with np.load(path, allow_pickle=False) as data:
             if fingerprint is not None and (str(data["fingerprint"]) != fingerprint
                                             or int(data["index"]) != index):
                 return None
-            arrays = {k: data[k] for k in ("p_fail", "rank", "log_risk")}
-            if "members_key" in data.files:
+            arrays = {k: data[k] for k in ("p_fail", "rank")}
+            if with_pmfs and "members_key" in data.files:
                 arrays["members_key"] = str(data["members_key"])
                 arrays["pmfs"] = {k: data[k] for k in data.files if k.startswith("pmf_")}
     except (OSError, ValueError, KeyError, zipfile.BadZipFile, EOFError):
@@ -336,7 +343,7 @@ class _Progress:
 
 
 # -- running the refits -----------------------------------------------------------------------
-def _run_joblib(table, group_by, copies, draws, todo, horizons, rank_column, jobs, on_result) -> None:
+def _run_joblib(table, table_key, group_by, copies, draws, todo, horizons, rank_column, jobs, on_result) -> None:
     if jobs == 1 or len(todo) <= 1:
         inputs = _RefitInputs(table, group_by)
         for i in todo:
@@ -346,7 +353,7 @@ def _run_joblib(table, group_by, copies, draws, todo, horizons, rank_column, job
 
     n_jobs = -1 if jobs == 0 else jobs
     with tempfile.TemporaryDirectory(prefix="wearcast-table-") as folder:
-        shared = _SharedTable(table, Path(folder), table_hash(table), group_by)
+        shared = _SharedTable(table, Path(folder), table_key, group_by)
         parallel = Parallel(n_jobs=n_jobs, return_as="generator_unordered")
         for result in parallel(delayed(_refit_task)(shared, copies[i], i, draws[i], horizons, rank_column)
                                for i in todo):
@@ -421,7 +428,8 @@ def bootstrap_refits(
         raise DataError("life table: no unit is in service at the export date, so there is nothing to rank.")
     groupings = group_labels(rows, group_by)
 
-    fingerprint = refit_fingerprint(table, model, seed, n_refits, horizons, rank_h)
+    table_key = table_hash(table)
+    fingerprint = refit_fingerprint(table, model, seed, n_refits, horizons, rank_h, table_key=table_key)
     seeds = np.random.default_rng(seed).integers(0, 2**31 - 1, size=(n_refits, 2))
     draws = [int(s) for s in seeds[:, 0]]
     shape = (len(unit_ids), len(horizons))
@@ -452,7 +460,8 @@ def bootstrap_refits(
             if scheduler is not None:
                 _run_dask(scheduler, table, group_by, copies, draws, todo, horizons, rank_column, on_result)
             else:
-                _run_joblib(table, group_by, copies, draws, todo, horizons, rank_column, jobs, on_result)
+                _run_joblib(table, table_key, group_by, copies, draws, todo, horizons, rank_column, jobs,
+                            on_result)
         finally:
             bar.close()
         summary = _summarise(folder, fingerprint, n_refits, shape, groupings, top_k)
@@ -487,7 +496,7 @@ def _summarise(folder, fingerprint, n_refits, shape, groupings, top_k) -> dict:
         p_block = np.empty((n_refits, stop - start, n_h), dtype=np.float32)
         r_block = np.empty((n_refits, stop - start), dtype=np.int32)
         for b in range(n_refits):
-            data = _load_refit(folder, b, fingerprint, shape)
+            data = _load_refit(folder, b, fingerprint, shape, with_pmfs=start == 0)
             if data is None:  # pragma: no cover - another process removed it meanwhile
                 raise ModelError(f"refit file {_refit_path(folder, b)} vanished or changed while summarising; rerun.")
             p = data["p_fail"]
