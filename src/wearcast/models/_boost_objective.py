@@ -143,17 +143,12 @@ def encode_covariates(
     out = np.empty((len(X), len(covariates)), dtype=np.float64)
     for j, col in enumerate(covariates):
         series = X[col]
-        if col in levels and isinstance(series.dtype, pd.CategoricalDtype):
-            # map each category once, then every row by its code (no per-row Python work)
-            position = pd.Index(list(levels[col])).get_indexer([str(c) for c in series.cat.categories])
-            row_codes = series.cat.codes.to_numpy()
+        if col in levels:
+            # map each distinct value's text once, then every row by its code (no per-row Python work)
+            cats = series if isinstance(series.dtype, pd.CategoricalDtype) else series.astype("category")
+            position = pd.Index(list(levels[col])).get_indexer([str(c) for c in cats.cat.categories])
+            row_codes = cats.cat.codes.to_numpy()
             codes = np.where(row_codes >= 0, position[row_codes], -1).astype(np.float64)
-            codes[codes < 0] = np.nan
-            out[:, j] = codes
-        elif col in levels:
-            text = series.astype(object).where(series.notna(), None)
-            text = text.map(lambda v: None if v is None else str(v))
-            codes = pd.Categorical(text, categories=list(levels[col])).codes.astype(np.float64)
             codes[codes < 0] = np.nan
             out[:, j] = codes
         else:
