@@ -225,8 +225,7 @@ class BoostedSurvivalTrees(SurvivalModel):
             # finds them) and reused: a refit's rows are only sorted into them
             params = self._lgb_params(0, encoded.covariates, encoded.levels)
             cat_idx = [encoded.covariates.index(c) for c in encoded.levels]
-            bins = lgb.Dataset(encoded.M, label=encoded.event.astype(float), categorical_feature=cat_idx or "auto",
-                               params=params, free_raw_data=True).construct()
+            bins = self._dataset(encoded.M, encoded.event, cat_idx, params).construct()
             cache[key] = (encoded, bins)
         encoded, bins = cache[key]
         rows, weights = draw_unit_weights(encoded.codes, rng)
@@ -240,7 +239,6 @@ class BoostedSurvivalTrees(SurvivalModel):
         if not covariates:
             raise ModelError("the life table has no covariates; list some under [fleet] covariates.")
         cat_idx = [covariates.index(c) for c in levels]
-        entry, exit_, event = data.entry, data.exit, data.event
         # Every seed drawn up front from one generator.
         rng = np.random.default_rng(self.seed)
         fold_seed, lgb_seed, bag_seed = (int(v) for v in rng.integers(0, 2**31 - 1, size=3))
@@ -248,7 +246,7 @@ class BoostedSurvivalTrees(SurvivalModel):
 
         if s.n_trees is None:
             folds = grouped_folds(codes, s.folds, np.random.default_rng(fold_seed))
-            fold_curves = self._cv_curves(M, entry, exit_, event, weights, codes, folds, cat_idx, params, bag_seed)
+            fold_curves = self._cv_curves(data, weights, folds, cat_idx, params, bag_seed)
             mean_curve = np.nanmean(fold_curves, axis=0)
             n_trees = int(np.nanargmin(mean_curve)) + 1
             self.cv_curve_, self.cv_fold_curves_ = mean_curve, fold_curves
@@ -257,7 +255,7 @@ class BoostedSurvivalTrees(SurvivalModel):
             self.cv_curve_ = self.cv_fold_curves_ = None
 
         risk_sets = data.risk_sets(weights, s.ties)
-        booster = lgb.Booster(params, self._dataset(M, event, cat_idx, params, reference=bins))
+        booster = lgb.Booster(params, self._dataset(M, data.event, cat_idx, params, reference=bins))
         objective = cox_objective(risk_sets, subsample=s.subsample, unit_codes=codes, seed=bag_seed)
         for _ in range(n_trees):
             booster.update(fobj=objective)
@@ -269,7 +267,7 @@ class BoostedSurvivalTrees(SurvivalModel):
         self.baseline_ = BaselineHazard.from_risk_sets(risk_sets, eta, interpolation="linear")
         return self
 
-    def _cv_curves(self, M, entry, exit_, event, weights, codes, folds, cat_idx, params, bag_seed) -> np.ndarray:
+    def _cv_curves(self, data: "_Encoded", weights, folds, cat_idx, params, bag_seed) -> np.ndarray:
         """Held-out loss per failure after each tree, shape (n_folds, trees run).
 
         The folds grow their boosters in step; boosting stops once the mean
@@ -279,21 +277,21 @@ class BoostedSurvivalTrees(SurvivalModel):
         fold_runs = []
         fold_bag_seeds = np.random.default_rng(bag_seed).integers(0, 2**31 - 1, size=s.folds)
         for k in range(s.folds):
-            train, held = folds != k, folds == k
-            if not event[train].any():
+            train, held = np.flatnonzero(folds != k), np.flatnonzero(folds == k)
+            fit_part, held_part = data.take(train), data.take(held)
+            if not fit_part.event.any():
                 continue
-            w_train = None if weights is None else weights[train]
-            w_held = None if weights is None else weights[held]
-            rs_train = prepare_risk_sets(entry[train], exit_[train], event[train], weights=w_train, ties=s.ties)
-            rs_held = prepare_risk_sets(entry[held], exit_[held], event[held], weights=w_held, ties=s.ties)
-            ds_train = self._dataset(M[train], event[train], cat_idx, params)
+            rs_train = fit_part.risk_sets(None if weights is None else weights[train], s.ties)
+            rs_held = held_part.risk_sets(None if weights is None else weights[held], s.ties)
+            ds_train = self._dataset(fit_part.M, fit_part.event, cat_idx, params)
             booster = lgb.Booster(params, ds_train)
-            booster.add_valid(self._dataset(M[held], event[held], cat_idx, params, reference=ds_train), "held_out")
+            booster.add_valid(self._dataset(held_part.M, held_part.event, cat_idx, params, reference=ds_train),
+                              "held_out")
 
             def score(raw, _data, rs=rs_held):
                 return "cox_loss_per_event", heldout_loss_per_event(rs, raw), False
 
-            objective = cox_objective(rs_train, subsample=s.subsample, unit_codes=codes[train],
+            objective = cox_objective(rs_train, subsample=s.subsample, unit_codes=fit_part.codes,
                                       seed=int(fold_bag_seeds[k]))
             fold_runs.append((booster, objective, score))
         if not fold_runs:
@@ -440,26 +438,26 @@ class _Encoded:
     exit: np.ndarray
     event: np.ndarray
     codes: np.ndarray
-    ages: np.ndarray | None = None  # sorted distinct ages of the table taken from, and the rows'
-    entry_rank: np.ndarray | None = None  # ranks in them (see prepare_risk_sets(age_ranks=));
-    exit_rank: np.ndarray | None = None  # None: sort afresh
+    #: ``(ages, entry_rank, exit_rank)``: the sorted distinct ages of the table taken from and
+    #: the rows' ranks in them (see ``prepare_risk_sets(age_ranks=)``); None: sort afresh
+    age_ranks: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
 
     @classmethod
     def of(cls, table, *, with_ranks: bool = False) -> "_Encoded":
         covariates = tuple(table.covariates)
         levels = category_levels(table.X, table.categorical)
-        ranks = age_ranks_of(table.entry, table.exit) if with_ranks else (None, None, None)
         return cls(covariates, levels, encode_covariates(table.X, covariates, levels),
-                   table.entry, table.exit, table.event, table.unit_codes(), *ranks)
+                   table.entry, table.exit, table.event, table.unit_codes(),
+                   age_ranks_of(table.entry, table.exit) if with_ranks else None)
 
     def take(self, rows: np.ndarray) -> "_Encoded":
-        ranks = (None, None, None) if self.ages is None else (self.ages, self.entry_rank[rows], self.exit_rank[rows])
+        ranks = None if self.age_ranks is None else (self.age_ranks[0], *(r[rows] for r in self.age_ranks[1:]))
         return _Encoded(self.covariates, self.levels, self.M[rows], self.entry[rows], self.exit[rows],
-                        self.event[rows], self.codes[rows], *ranks)
+                        self.event[rows], self.codes[rows], ranks)
 
     def risk_sets(self, weights, ties: str):
-        ranks = None if self.ages is None else (self.ages, self.entry_rank, self.exit_rank)
-        return prepare_risk_sets(self.entry, self.exit, self.event, weights=weights, ties=ties, age_ranks=ranks)
+        return prepare_risk_sets(self.entry, self.exit, self.event, weights=weights, ties=ties,
+                                 age_ranks=self.age_ranks)
 
 
 def _training_scores(booster: lgb.Booster, n: int) -> np.ndarray:
