@@ -65,9 +65,9 @@ class SurvivalModel(ABC):
     def fail_probabilities(self, X: pd.DataFrame, age: np.ndarray, horizons_days) -> np.ndarray:
         """:meth:`fail_probability` for several horizons at once, shape (n, H).
 
-        Models override it to score ``X`` once for all horizons (the boosted
-        trees and Cox through ``exp(eta(x)) H0(t)``, the forest by routing each
-        unit through its trees once).
+        The boosted trees (through ``exp(eta(x)) H0(t)``) and the forest (one
+        pass of each unit through its trees) override it to score ``X`` once for
+        all horizons; the Cox baseline's scoring is cheap enough as it is.
         """
         return np.column_stack([self.fail_probability(X, age, float(h)) for h in horizons_days])
 
