@@ -28,7 +28,12 @@ def test_zero_eta_equals_lifelines_nelson_aalen_with_entry(macs):
     base = BaselineHazard.estimate(entry, exit, event)
     naf = NelsonAalenFitter(nelson_aalen_smoothing=False).fit(exit, event, entry=entry)
     grid = naf.cumulative_hazard_.index.to_numpy(float)
-    np.testing.assert_allclose(base.at(grid), naf.cumulative_hazard_.iloc[:, 0].to_numpy(), rtol=1e-12, atol=1e-14)
+    # up to the oldest failure; past it lifelines stays flat and wearcast continues with its tail
+    upto = grid <= exit[event].max()
+    np.testing.assert_allclose(base.at(grid[upto]), naf.cumulative_hazard_.iloc[:, 0].to_numpy()[upto],
+                               rtol=1e-12, atol=1e-14)
+    assert (base.at(grid[~upto]) > base.at(exit[event].max())).all()
+    grid = grid[upto]
     # Ignoring entry gives a different (biased) curve, so the check has teeth.
     ignoring = NelsonAalenFitter(nelson_aalen_smoothing=False).fit(exit, event)
     assert not np.allclose(base.at(grid), ignoring.cumulative_hazard_at_times(grid).to_numpy())
@@ -41,7 +46,9 @@ def test_step_function_shape(macs):
     first, last = base.ages["all"][0], base.ages["all"][-1]
     assert base.at(first - 1e-9) == 0.0  # 0 before the first failure
     assert base.at(first) > 0.0  # right-continuous: the jump belongs to the failure age
-    assert base.at(last + 1000.0) == base.at(last)  # flat after the last failure
+    # past the last failure the power-law tail carries the hazard on (test_tail.py checks its fit)
+    assert base.at(last + 1000.0) > base.at(last)
+    assert base.at(last + 1000.0) - base.at(last) == pytest.approx(base.tail_of().increment(last + 1000.0))
     grid = np.linspace(0, last + 5, 200)
     eta = np.array([-1.0, 0.0, 2.0])[:, None]
     curves = base.survival(eta, grid)
@@ -119,7 +126,8 @@ def test_from_risk_sets_equals_estimate(ties):
 
     entry, exit, event, eta, weights = tied_rows(12, 80, [1.0, 2.0, 3.0])
     rs = prepare_risk_sets(entry, exit, event, weights=weights, ties=ties)
-    quick = BaselineHazard.from_risk_sets(rs, eta, interpolation="linear")
+    quick = BaselineHazard.from_risk_sets(rs, eta, interpolation="linear").fit_tails(
+        entry, exit, event, eta, weights=weights)
     slow = BaselineHazard.estimate(entry, exit, event, eta, weights=weights, ties=ties, interpolation="linear")
     grid = np.linspace(0, 10, 41)
     np.testing.assert_allclose(quick.at(grid), slow.at(grid), rtol=1e-12, atol=1e-15)
@@ -170,5 +178,8 @@ def test_linear_interpolation_agrees_at_failure_ages_and_fills_gaps():
     tiny = (fail_ages[1:] - fail_ages[:-1]) / 4
     assert np.all(lin.fail_probability(0.0, mids, 0.0 + tiny.min()) > 0)
     assert np.all(step.fail_probability(0.0, mids[:3], 1e-9) == 0)
-    assert lin.at(np.array([fail_ages[-1] + 10]))[0] == lin.at(fail_ages[-1:])[0]
+    # past the last failure both carry on with the same tail
+    beyond = np.array([fail_ages[-1] + 10])
+    assert lin.at(beyond)[0] - lin.at(fail_ages[-1:])[0] == pytest.approx(lin.tail_of().increment(beyond)[0])
+    assert lin.at(beyond)[0] - lin.at(fail_ages[-1:])[0] == pytest.approx(step.at(beyond)[0] - step.at(fail_ages[-1:])[0])
     assert BaselineHazard.from_dict(lin.to_dict()).interpolation == "linear"

@@ -8,10 +8,11 @@ A risk-score model (Cox, boosted trees) gives each row a log relative risk
 ``H0`` is Breslow's estimator over the rows' ``(entry, exit]`` risk sets, so a
 unit that entered observation late (left truncation) only counts from its entry
 age on. With all ``eta = 0`` it is the Nelson–Aalen estimator. ``H0`` is a right-
-continuous step function: 0 before the first failure age, flat after the last
-one (:attr:`BaselineHazard.max_age`). There is no extrapolation past the last
-failure age, so probabilities for ages beyond it understate the risk; callers
-should warn when they ask for such ages.
+continuous step function (or joined linearly between failure ages): 0 before
+the first failure age. Past the last one (:attr:`BaselineHazard.max_age`) each
+stratum continues with a power-law tail fitted to the upper part of its records
+(:mod:`wearcast.models._tail`), so a unit older than every recorded failure is
+never given a zero probability; callers flag such ages as resting on the tail.
 """
 
 from __future__ import annotations
@@ -22,10 +23,11 @@ import numpy as np
 
 from wearcast.models._cox_kernels import baseline_hazard_increments, prepare_risk_sets
 from wearcast.models._hazard import breslow_cumulative_hazard, linear_at, step_at
+from wearcast.models._tail import NO_TAIL, PowerTail, fit_power_tail
 from wearcast.models.base import conditional_failure_probability
 
 _FORMAT = "wearcast.baseline_hazard"
-_VERSION = 1
+_VERSION = 2  # 2 adds the tail past the last failure age; 1 (no tail) still loads
 _SINGLE = "all"  # the label of the only stratum when no strata are given
 
 
@@ -48,6 +50,9 @@ class BaselineHazard:
     #: "step" (right-continuous, jumps at failure ages) or "linear" (joined
     #: linearly between failure ages; equal at them; see _hazard.linear_at).
     interpolation: str = "step"
+    #: Per stratum, the power-law continuation past its last failure age
+    #: (absent: flat, the behaviour of baselines saved before tails existed).
+    tails: dict[str, PowerTail] = field(default_factory=dict)
 
     def __post_init__(self):
         if self.interpolation not in ("step", "linear"):
@@ -119,6 +124,22 @@ class BaselineHazard:
         else:
             rs = prepare_risk_sets(entry, exit, event, strata=labels, weights=weights, ties="efron")
             self._set_from_risk_sets(rs, eta, [str(label) for label in rs.stratum_labels])
+        return self.fit_tails(entry, exit, event, eta, weights=weights, strata=None if strata is None else labels)
+
+    def fit_tails(self, entry, exit, event, eta=None, *, weights=None, strata=None) -> "BaselineHazard":
+        """Fit each stratum's tail past its last failure age (:func:`fit_power_tail`)
+        on the same rows and scores as the steps; returns self."""
+        entry = np.asarray(entry, float).ravel()
+        exit = np.asarray(exit, float).ravel()
+        event = np.asarray(event, bool).ravel()
+        n = exit.size
+        eta = np.zeros(n) if eta is None else np.asarray(eta, float).ravel()
+        weights = np.ones(n) if weights is None else np.asarray(weights, float).ravel()
+        labels = np.full(n, _SINGLE) if strata is None else _labels(strata, (n,))
+        self.tails = {}
+        for label in np.unique(labels):
+            keep = labels == label
+            self.tails[str(label)] = fit_power_tail(entry[keep], exit[keep], event[keep], eta[keep], weights[keep])
         return self
 
     # -- evaluation ---------------------------------------------------------
@@ -128,7 +149,7 @@ class BaselineHazard:
 
     @property
     def max_age(self) -> float:
-        """The last failure age (days) over all strata; ``H0`` is flat after it."""
+        """The last failure age (days) over all strata; past it ``H0`` rests on the tails."""
         last = [float(a[-1]) for a in self.ages.values() if a.size]
         return max(last) if last else 0.0
 
@@ -158,18 +179,25 @@ class BaselineHazard:
                     f"this baseline hazard has {len(self.ages)} strata ({', '.join(self.strata)}); pass strata="
                 )
             (key,) = self.ages
-            return self._evaluate(self.ages[key], self.cumhaz[key], ages)
+            return self._evaluate(key, ages)
         labels = _labels(strata, np.broadcast_shapes(np.shape(strata), ages.shape))
         ages = np.broadcast_to(ages, labels.shape)
         out = np.zeros(labels.shape)
         for label in np.unique(labels):
             mask = labels == label
             key = self._key(label)
-            out[mask] = self._evaluate(self.ages[key], self.cumhaz[key], ages[mask])
+            out[mask] = self._evaluate(key, ages[mask])
         return out
 
-    def _evaluate(self, ages, cumhaz, query):
-        return linear_at(ages, cumhaz, query) if self.interpolation == "linear" else step_at(ages, cumhaz, query)
+    def _evaluate(self, key: str, query):
+        ages, cumhaz = self.ages[key], self.cumhaz[key]
+        steps = linear_at(ages, cumhaz, query) if self.interpolation == "linear" else step_at(ages, cumhaz, query)
+        return steps + self.tails.get(key, NO_TAIL).increment(query)
+
+    def tail_of(self, stratum=None) -> PowerTail:
+        """The tail of one stratum (the only one when ``stratum`` is None); :data:`NO_TAIL` if it has none."""
+        key = next(iter(self.ages)) if stratum is None and len(self.ages) == 1 else self._key(stratum)
+        return self.tails.get(key, NO_TAIL)
 
     def cumulative_hazard_at(self, eta: np.ndarray, ages: np.ndarray, strata=None) -> np.ndarray:
         """``H0(age) * exp(eta)``; ``eta`` and ``ages`` broadcast (e.g. (n, 1) with (m,) gives (n, m))."""
@@ -201,6 +229,7 @@ class BaselineHazard:
                     "label": key,
                     "ages_days": [float(a) for a in self.ages[key]],
                     "cumulative_hazard": [float(h) for h in self.cumhaz[key]],
+                    **({"tail": self.tails[key].to_dict()} if key in self.tails else {}),
                 }
                 for key in self.strata
             ],
@@ -211,7 +240,7 @@ class BaselineHazard:
         """Inverse of :meth:`to_dict`; raises ``ValueError`` on a foreign or damaged dict."""
         if not isinstance(data, dict) or data.get("format") != _FORMAT:
             raise ValueError(f"not a saved baseline hazard (expected format {_FORMAT!r})")
-        if data.get("version") != _VERSION:
+        if data.get("version") not in (1, _VERSION):
             raise ValueError(f"baseline hazard version {data.get('version')!r} is not supported (expected {_VERSION})")
         out = cls(ties=str(data.get("ties", "breslow")), interpolation=str(data.get("interpolation", "step")))
         for item in data["strata"]:
@@ -221,4 +250,6 @@ class BaselineHazard:
                 raise ValueError(f"baseline hazard stratum {item.get('label')!r} is damaged")
             out.ages[str(item["label"])] = ages
             out.cumhaz[str(item["label"])] = cumhaz
+            if "tail" in item:
+                out.tails[str(item["label"])] = PowerTail.from_dict(item["tail"])
         return out

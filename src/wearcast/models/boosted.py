@@ -264,7 +264,8 @@ class BoostedSurvivalTrees(SurvivalModel):
         self.covariates_ = covariates
         self.category_levels_ = levels
         eta = _training_scores(booster, len(M))
-        self.baseline_ = BaselineHazard.from_risk_sets(risk_sets, eta, interpolation="linear")
+        self.baseline_ = BaselineHazard.from_risk_sets(risk_sets, eta, interpolation="linear").fit_tails(
+            data.entry, data.exit, data.event, eta, weights=weights)
         return self
 
     def _cv_curves(self, data: "_Encoded", weights, folds, cat_idx, params, bag_seed) -> np.ndarray:
