@@ -402,13 +402,17 @@ def test_loading_refuses_unknown_versions_and_reads_version_1(tmp_path):
     folder = tmp_path / "forest"
     model.save(folder)
     meta = json.loads((folder / "forest.json").read_text())
-    assert meta["format_version"] == 2 and meta["settings"]["grow_on"] == "rows"
-    # a version-1 file had no grow_on (its trees were grown on rows); arrays are unchanged
-    del meta["settings"]["grow_on"]
+    assert meta["format_version"] == 3 and meta["settings"]["grow_on"] == "rows"
+    # a version-1 file had no grow_on (its trees were grown on rows), no leaf prior and no tail;
+    # it loads with a step between grid ages and predicts flat past the last grid age
+    del meta["settings"]["grow_on"], meta["settings"]["leaf_prior_units"], meta["tail"]
     (folder / "forest.json").write_text(json.dumps({**meta, "format_version": 1}))
     old = SurvivalForest.load(folder)
-    assert old.grow_on == "rows"
+    assert old.grow_on == "rows" and old.interpolation_ == "step" and old.leaf_prior_units == 0.0
     np.testing.assert_array_equal(old.risk_score(table.X), model.risk_score(table.X))
+    last = float(old.grid_[-1])
+    np.testing.assert_array_equal(old.cumulative_hazard(table.X, [last, last + 1000.0])[:, 0],
+                                  old.cumulative_hazard(table.X, [last, last + 1000.0])[:, 1])
     (folder / "forest.json").write_text(json.dumps({**meta, "format_version": 99}))
     with pytest.raises(BundleError, match="format_version 99 is not one this wearcast reads"):
         SurvivalForest.load(folder)
@@ -488,3 +492,83 @@ def test_one_routing_pass_scores_like_the_per_horizon_calls():
     np.testing.assert_allclose(np.exp(log_risk), forest.risk_score(X), rtol=1e-12)
     hand = sum(risk[apply_tree(tree, forest._encode(X))] for tree, risk in zip(forest.trees_, forest.leaf_risks_))
     np.testing.assert_allclose(forest.risk_score(X), hand / len(forest.trees_), rtol=1e-12)
+
+
+# -- shrunk leaves, linear steps and the tail past the oldest failure --------------------
+def test_shrunk_leaf_hazards_follow_the_beta_process_formula_on_macs():
+    # Hjort (1990, Annals of Statistics 18:1259-1294; formula recalled from memory): with a prior
+    # centred on the pooled hazard and weight c units, each leaf's jump at failure age s is
+    # (d_leaf(s) + c dH_pool(s)) / (Y_leaf(s) + c). Counted here by brute force from the rows
+    # (Y: rows with entry < s <= exit), the pooled jumps from lifelines' NelsonAalenFitter with entry.
+    d = _macs()
+    entry, exit, event = d["W"].to_numpy(), d["T"].to_numpy(), d["D"].to_numpy().astype(bool)
+    leaf = (entry > np.median(entry)).astype(np.int32)
+    grid = failure_age_grid(exit, event, 1000)
+    c = 7.0
+    hazard = leaf_hazards_on_grid(leaf, 2, entry, exit, event, np.ones(len(d)), grid, prior_units=c)
+    pooled = NelsonAalenFitter(nelson_aalen_smoothing=False).fit(exit, event, entry=entry)
+    jumps = np.diff(np.concatenate([[0.0], pooled.cumulative_hazard_at_times(grid).to_numpy()]))
+    for k in (0, 1):
+        rows = leaf == k
+        at_risk = np.array([((entry[rows] < s) & (exit[rows] >= s)).sum() for s in grid])
+        deaths = np.array([(event[rows] & (exit[rows] == s)).sum() for s in grid])
+        expected = np.cumsum((deaths + c * jumps) / (at_risk + c))
+        np.testing.assert_allclose(hazard[k], expected, rtol=1e-5)
+    # where a leaf has nobody at risk it takes the pooled jump; with c = 0 it is plain Nelson-Aalen
+    plain = leaf_hazards_on_grid(leaf, 2, entry, exit, event, np.ones(len(d)), grid)
+    assert not np.allclose(plain, hazard)
+
+
+def test_compiled_shrunk_leaf_hazards_equal_the_numpy_ones():
+    from wearcast.models import _forest_leaves as fl
+
+    if fl._leaf_hazards_compiled is None:
+        pytest.skip("numba is not installed")
+    rng = np.random.default_rng(9)
+    n = 3000
+    entry = rng.integers(0, 300, n).astype(float)
+    exit = entry + rng.integers(1, 400, n)
+    event = rng.random(n) < 0.3
+    grid = np.quantile(exit[event], np.linspace(0, 1, 40))
+    index = fl.risk_index(entry, exit, event, grid)
+    leaf = rng.integers(0, 23, n)
+    weights = rng.choice([0.0, 1.0, 2.0], n)
+    prior = fl.pooled_increments(index, weights)
+    compiled = fl.leaf_hazards_indexed(index, leaf, 23, weights, prior, 5.0)
+    reference = fl.leaf_hazards_numpy(index, leaf, 23, weights, prior, 5.0)
+    np.testing.assert_allclose(compiled, reference, rtol=1e-6)
+    assert (np.diff(compiled, axis=1) > 0).all()  # every leaf rises at every failure age
+
+
+def test_small_fleet_has_no_exact_zeros_and_a_tail_past_the_oldest_failure():
+    # Before shrinkage, linear steps and the tail this fleet (seeds as here) read exactly 0 for 13
+    # of its 79 working units at 30 days (a window holding no grid age of the unit's leaves) and
+    # for 6 at 365 days (units older than the oldest failure).
+    table = _truncated_weibull(150, seed=21)
+    model = SurvivalForest(n_trees=30, seed=2).fit(table)
+    alive = ~table.event  # each unit has one row: the suspended ones are the units still working
+    X_now, age_now = table.X[alive], table.exit[alive]
+    for h in (30.0, 365.0):
+        p = model.fail_probability(X_now, age_now, h)
+        assert_valid_probability(p)
+        assert (p > 0).all(), (h, int((p == 0).sum()))
+    last = float(model.grid_[-1])
+    ages = np.array([last / 2, last, last + 100.0, last + 1000.0])
+    curves = model.survival(X_now, ages)
+    assert_valid_survival(curves)
+    assert (np.diff(model.cumulative_hazard(X_now, ages), axis=1) > 0).all()
+    assert model.tail_.anchor == last and model.tail_.rate > 0
+
+
+def test_forest_hazard_is_linear_between_grid_ages():
+    table = _truncated_weibull(300, seed=5)
+    model = SurvivalForest(n_trees=5, seed=4).fit(table)
+    X = table.X.iloc[:7]
+    g = model.grid_
+    at_grid = model.cumulative_hazard(X, g[:20])
+    mids = (g[:19] + g[1:20]) / 2
+    np.testing.assert_allclose(model.cumulative_hazard(X, mids), (at_grid[:, :-1] + at_grid[:, 1:]) / 2, rtol=1e-6)
+    # from 0 at age 0 to the first grid age
+    np.testing.assert_allclose(model.cumulative_hazard(X, [g[0] / 4])[:, 0], at_grid[:, 0] / 4, rtol=1e-6)
+    # the per-unit path and the shared-grid path agree
+    np.testing.assert_allclose(model.cumulative_hazard_at(X, np.full(7, mids[3])), model.cumulative_hazard(X, mids)[:, 3])

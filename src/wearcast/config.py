@@ -99,6 +99,7 @@ class ForestSection:
     max_depth: int = 12
     time_grid_points: int = 200
     grow_on: str = "episodes"  # choose splits on one point per life episode ("episodes") or on every row ("rows")
+    leaf_prior_units: float = 10.0  # weight, in units at risk, of the tree's pooled hazard in each leaf's
 
 
 @dataclass(frozen=True)

@@ -5,10 +5,21 @@ with delayed entry (a row is at risk at ``t`` when ``entry < t <= exit``),
 evaluated exactly at the grid ages. Memory per tree is
 ``n_leaves * n_grid`` float32 whatever the number of distinct failure ages.
 
-Between grid ages the forest uses a right-continuous step: ``H(t)`` is the
-value at the last grid age ``<= t`` (0 before the first grid age, the last
-value after the last). With the grid equal to all distinct failure ages this
-is the exact Nelson–Aalen step function.
+A leaf with few rows at risk at some age would take a hazard of exactly 0
+there (or no hazard at all where none of its rows is at risk), so each leaf's
+increments are shrunk toward its tree's pooled Nelson–Aalen increments with
+the posterior mean of a beta-process prior (Hjort 1990, "Nonparametric Bayes
+estimators based on beta processes in models for life history data", Annals
+of Statistics 18(3), eq. 4.2 — recalled from memory)::
+
+    dH_leaf(s) = (c dH_pool(s) + d_leaf(s)) / (c + Y_leaf(s))
+
+with ``c`` the prior's weight in units at risk (``prior_units``; 0 gives the
+plain Nelson–Aalen estimator). Where the leaf has many rows at risk the data
+dominate; where it has none, the leaf follows its tree.
+
+Between grid ages the forest joins the values linearly (:func:`grid_weights`;
+0 at age 0); forests saved before that used a right-continuous step.
 
 Speed: everything that does not depend on a tree's bootstrap draw is located
 once per fit in a :class:`RiskIndex` (each row's first and last failure age at
@@ -143,7 +154,13 @@ def pooled_hazard_of_groups(
     return H, expected
 
 
-def _leaf_hazards_loop(first, stop, leaf, w, fail_rows, fail_at, grid_at, n_ages, n_leaves, block, out):
+def pooled_increments(index: RiskIndex, weights: np.ndarray) -> np.ndarray:
+    """The jumps of :func:`pooled_cumulative_hazard`, shape (D,)."""
+    return np.diff(pooled_cumulative_hazard(index, weights))
+
+
+def _leaf_hazards_loop(first, stop, leaf, w, fail_rows, fail_at, grid_at, n_ages, n_leaves, block,
+                       prior, prior_units, out):
     # the NumPy version below, row by row: the same additions in the same order
     m = grid_at.size
     hazard_of_age = np.empty(n_ages)
@@ -166,7 +183,9 @@ def _leaf_hazards_loop(first, stop, leaf, w, fail_rows, fail_at, grid_at, n_ages
             hazard = 0.0
             for d in range(n_ages):
                 at_risk += starts[a, d] - stops[a, d]
-                if deaths[a, d] > 0:
+                if prior_units > 0:
+                    hazard += (deaths[a, d] + prior_units * prior[d]) / (at_risk + prior_units)
+                elif deaths[a, d] > 0:
                     hazard += deaths[a, d] / at_risk
                 hazard_of_age[d] = hazard
             for g in range(m):
@@ -176,11 +195,25 @@ def _leaf_hazards_loop(first, stop, leaf, w, fail_rows, fail_at, grid_at, n_ages
 _leaf_hazards_compiled = njit(cache=True, nogil=True)(_leaf_hazards_loop) if njit is not None else None
 
 
-def leaf_hazards_indexed(index: RiskIndex, leaf: np.ndarray, n_leaves: int, weights: np.ndarray) -> np.ndarray:
+def _prior(index: RiskIndex, prior_increments, prior_units: float) -> tuple[np.ndarray, float]:
+    if prior_units < 0:
+        raise ValueError(f"prior_units must be >= 0; got {prior_units}")
+    if prior_units == 0 or prior_increments is None:
+        return np.zeros(index.n_ages), 0.0
+    prior_increments = np.asarray(prior_increments, float)
+    if prior_increments.shape != (index.n_ages,):
+        raise ValueError(f"prior_increments must have shape ({index.n_ages},); got {prior_increments.shape}")
+    return prior_increments, float(prior_units)
+
+
+def leaf_hazards_indexed(index: RiskIndex, leaf: np.ndarray, n_leaves: int, weights: np.ndarray,
+                         prior_increments: np.ndarray | None = None, prior_units: float = 0.0) -> np.ndarray:
     """Nelson–Aalen with delayed entry per leaf at the grid ages, float32 (n_leaves, m).
 
     ``leaf`` (n,) leaf number of each row; ``weights`` (n,) case weights (0 =
-    not in this tree's sample). Leaves are done in blocks of at most
+    not in this tree's sample); ``prior_increments`` (D,) the hazard jumps the
+    leaves are shrunk toward with weight ``prior_units`` (module docstring;
+    none when 0). Leaves are done in blocks of at most
     ``MAX_BLOCK_CELLS`` (leaf, failure age) cells: at-risk counts are a cumulative
     sum of +w at ``first`` and -w at ``stop`` per leaf. Runs compiled (numba,
     without the GIL, so forest threads run side by side) when numba is
@@ -191,19 +224,22 @@ def leaf_hazards_indexed(index: RiskIndex, leaf: np.ndarray, n_leaves: int, weig
     if D == 0 or m == 0 or n_leaves == 0:
         return out
     if _leaf_hazards_compiled is None:
-        return leaf_hazards_numpy(index, leaf, n_leaves, weights)
+        return leaf_hazards_numpy(index, leaf, n_leaves, weights, prior_increments, prior_units)
+    prior, c = _prior(index, prior_increments, prior_units)
     _leaf_hazards_compiled(index.first, index.stop, np.asarray(leaf, np.int64), np.asarray(weights, float),
                            index.fail_rows, index.fail_at, index.grid_at, D, n_leaves,
-                           max(1, MAX_BLOCK_CELLS // (D + 1)), out)
+                           max(1, MAX_BLOCK_CELLS // (D + 1)), prior, c, out)
     return out
 
 
-def leaf_hazards_numpy(index: RiskIndex, leaf: np.ndarray, n_leaves: int, weights: np.ndarray) -> np.ndarray:
+def leaf_hazards_numpy(index: RiskIndex, leaf: np.ndarray, n_leaves: int, weights: np.ndarray,
+                       prior_increments: np.ndarray | None = None, prior_units: float = 0.0) -> np.ndarray:
     """:func:`leaf_hazards_indexed` with NumPy only (the reference for the compiled loop)."""
     D, m = index.n_ages, len(index.grid_at)
     out = np.zeros((n_leaves, m), np.float32)
     if D == 0 or m == 0 or n_leaves == 0:
         return out
+    prior, c = _prior(index, prior_increments, prior_units)
     w = np.asarray(weights, float)
     leaf = np.asarray(leaf, np.int64)
     used = w > 0
@@ -224,7 +260,10 @@ def leaf_hazards_numpy(index: RiskIndex, leaf: np.ndarray, n_leaves: int, weight
         in_block = (fail_leaf >= lo) & (fail_leaf < hi) & (fail_w > 0)
         deaths = np.bincount((fail_leaf[in_block] - lo) * D + index.fail_at[in_block], fail_w[in_block], k * D)
         deaths = deaths.reshape(k, D)  # (bincount gives int64 zeros when a block holds no failure)
-        hazard = np.cumsum(np.divide(deaths, at_risk, out=np.zeros((k, D)), where=deaths > 0), axis=1)
+        if c > 0:
+            hazard = np.cumsum((deaths + c * prior) / (at_risk + c), axis=1)
+        else:
+            hazard = np.cumsum(np.divide(deaths, at_risk, out=np.zeros((k, D)), where=deaths > 0), axis=1)
         values = hazard[:, columns]
         values[:, before] = 0.0
         out[lo:hi] = values
@@ -239,6 +278,7 @@ def leaf_hazards_on_grid(
     event: np.ndarray,
     weights: np.ndarray,
     grid: np.ndarray,
+    prior_units: float = 0.0,
 ) -> np.ndarray:
     """Nelson–Aalen with delayed entry per leaf at the grid ages.
 
@@ -247,13 +287,53 @@ def leaf_hazards_on_grid(
     ``grid`` (m,) increasing ages. Returns float32 (n_leaves, m) with
     ``H_leaf(grid_k) = sum over failure ages s <= grid_k of d(s) / Y(s)``,
     ``Y(s)`` the weighted count of the leaf's rows with ``entry < s <= exit``.
-    One-off form of :func:`leaf_hazards_indexed` (builds the index first).
+    With ``prior_units`` > 0 the leaves are shrunk toward the pooled
+    Nelson–Aalen of all the rows. One-off form of
+    :func:`leaf_hazards_indexed` (builds the index first).
     """
     keep = np.asarray(weights) > 0
     index = risk_index(np.asarray(entry)[keep], np.asarray(exit)[keep], np.asarray(event, bool)[keep], grid)
-    return leaf_hazards_indexed(index, np.asarray(leaf)[keep], n_leaves, np.asarray(weights, float)[keep])
+    w = np.asarray(weights, float)[keep]
+    prior = pooled_increments(index, w) if prior_units > 0 else None
+    return leaf_hazards_indexed(index, np.asarray(leaf)[keep], n_leaves, w, prior, prior_units)
 
 
 def grid_column(grid: np.ndarray, ages: np.ndarray) -> np.ndarray:
     """Column of the last grid age ``<= age`` for each age; -1 before the grid."""
     return np.searchsorted(grid, np.asarray(ages, float), side="right") - 1
+
+
+def grid_weights(grid: np.ndarray, ages: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Linear interpolation between grid ages: ``H(age) = (1 - f) H[lo] + f H[hi]``.
+
+    Returns ``(lo, hi, f)`` of the shape of ``ages``: column indices into a
+    hazard table with a column of zeros prepended at age 0 (so index 0 is age
+    0 and grid column ``k`` is index ``k + 1``), and the weight ``f`` in
+    [0, 1]. Ages at or past the last grid age take the last column (``f = 0``).
+    """
+    grid = np.asarray(grid, float)
+    knots = np.concatenate([[0.0], grid])
+    ages = np.clip(np.asarray(ages, float), 0.0, knots[-1])
+    hi = np.clip(np.searchsorted(knots, ages, side="left"), 1, len(knots) - 1)
+    lo = hi - 1
+    width = knots[hi] - knots[lo]
+    f = np.divide(ages - knots[lo], width, out=np.ones(ages.shape), where=width > 0)
+    at_end = ages >= knots[-1]
+    return np.where(at_end, len(knots) - 1, lo), np.where(at_end, len(knots) - 1, hi), np.where(at_end, 0.0, f)
+
+
+def leaf_tail_ratio(leaf_hazard: np.ndarray, pooled_on_grid: np.ndarray, from_column: int) -> np.ndarray:
+    """Each leaf's hazard relative to its tree's over the ages the tail was fitted on, shape (n_leaves,).
+
+    ``leaf_hazard`` (n_leaves, m) and ``pooled_on_grid`` (m,) cumulative
+    hazards on the grid; the ratio is of their rise from grid column
+    ``from_column`` (-1: from age 0) to the last column; 1 where the tree's
+    pooled hazard does not rise there.
+    """
+    leaf_hazard = np.asarray(leaf_hazard, float)
+    start_leaf = leaf_hazard[:, from_column] if from_column >= 0 else 0.0
+    start_pool = pooled_on_grid[from_column] if from_column >= 0 else 0.0
+    rise = float(pooled_on_grid[-1] - start_pool)
+    if not rise > 0:
+        return np.ones(leaf_hazard.shape[0])
+    return np.maximum(leaf_hazard[:, -1] - start_leaf, 0.0) / rise

@@ -6,9 +6,14 @@ delayed-entry martingale residuals (see :mod:`wearcast.models._forest_grow`),
 chosen by default on one point per episode (a life's rows up to a failure,
 residuals summed, covariates of the closing row); every in-bag row is then
 routed down the tree. Each leaf keeps the Nelson–Aalen cumulative hazard of its in-bag rows with
-delayed entry, on a bounded grid of ages (:mod:`wearcast.models._forest_leaves`),
-stored as float32. The forest's cumulative hazard is the average over trees of
-the leaf hazards; between grid ages it is a right-continuous step.
+delayed entry, shrunk toward its tree's pooled hazard by ``leaf_prior_units`` (so a
+leaf with few rows at risk at some age never reads exactly 0 there), on a bounded
+grid of ages (:mod:`wearcast.models._forest_leaves`), stored as float32. The
+forest's cumulative hazard is the average over trees of the leaf hazards, joined
+linearly between grid ages. Past the oldest failure on record it continues with a
+power-law tail fitted to the upper part of the records
+(:mod:`wearcast.models._tail`), each leaf scaled by its hazard relative to its
+tree's over the ages that tail was fitted on.
 
 ``mode="bagging"`` tries every predictor at each split; ``"random_forest"``
 tries ``predictors_per_split`` of them (a share of the encoded predictors;
@@ -36,9 +41,10 @@ from wearcast.exceptions import BundleError, ConfigError, ModelError
 from wearcast.models._forest_encode import encode, encoded_names, learn_levels
 from wearcast.models._forest_grow import FlatTree, apply_tree, episodes, grow_on_points, route
 from wearcast.models._forest_leaves import (
-    GroupTerms, RiskIndex, failure_age_grid, grid_column, group_terms, leaf_hazards_indexed,
-    pooled_cumulative_hazard, pooled_hazard_of_groups, risk_index,
+    GroupTerms, RiskIndex, failure_age_grid, grid_column, grid_weights, group_terms, leaf_hazards_indexed,
+    leaf_tail_ratio, pooled_cumulative_hazard, pooled_hazard_of_groups, risk_index,
 )
+from wearcast.models._tail import NO_TAIL, PowerTail, fit_power_tail
 from wearcast.models._forest_oob import (
     MAX_SCORED_LIVES, OOBAccumulator, bootstrap_draw, harrell_c, last_rows_of_lives,
 )
@@ -48,9 +54,10 @@ MODES = ("random_forest", "bagging")
 GROW_ON = ("episodes", "rows")
 SETTINGS_FILE = "forest.json"
 ARRAYS_FILE = "forest_arrays.npz"
-# 2 added the grow_on setting; version 1 files (grown on rows) still load
-FORMAT_VERSION = 2
-READABLE_VERSIONS = (1, 2)
+# 2 added the grow_on setting; 3 shrunk leaves, linear between grid ages and the tail.
+# Versions 1 and 2 still load and predict as they did (step, no tail).
+FORMAT_VERSION = 3
+READABLE_VERSIONS = (1, 2, 3)
 
 
 @dataclass(frozen=True)
@@ -72,6 +79,7 @@ class _FitData:
 class _GrownTree:
     tree: FlatTree
     leaf_hazard: np.ndarray  # float32 (n_leaves, n_grid)
+    tail_ratio: np.ndarray  # float64 (n_leaves,) the leaf's multiple of the forest's tail
     life_risk: np.ndarray  # float64 (n_lives,) the tree's risk at each life's last row
     counts: np.ndarray  # int32 (n_units,) the tree's bootstrap draw
 
@@ -88,7 +96,8 @@ class SurvivalForest(SurvivalModel):
     ("episodes": splits are chosen on one point per episode, the rows of a
     life up to a failure, with the episode's summed residual and its closing
     row's covariates; "rows": on every counting-process row). Leaf hazards
-    always use every in-bag row.
+    always use every in-bag row. ``leaf_prior_units``: the weight, in units at
+    risk, of the tree's pooled hazard in each leaf's (0: plain Nelson–Aalen).
     """
 
     name = "forest"
@@ -106,6 +115,7 @@ class SurvivalForest(SurvivalModel):
         seed: int = 0,
         n_jobs: int = 1,
         grow_on: str = "episodes",
+        leaf_prior_units: float = 10.0,
     ):
         if mode not in MODES:
             raise ConfigError(f"[model.forest] mode = {mode!r} is not known; use one of {', '.join(MODES)}.")
@@ -121,6 +131,8 @@ class SurvivalForest(SurvivalModel):
                 "[model.forest] min_events_per_leaf must be >= 1, max_depth >= 0 and time_grid_points >= 2; "
                 f"got {min_events_per_leaf}, {max_depth}, {time_grid_points}."
             )
+        if not leaf_prior_units >= 0:
+            raise ConfigError(f"[model.forest] leaf_prior_units = {leaf_prior_units}; give a number of units >= 0.")
         if grow_on not in GROW_ON:
             raise ConfigError(f"grow_on = {grow_on!r} is not known; use one of {', '.join(GROW_ON)}.")
         self.mode = mode
@@ -133,19 +145,23 @@ class SurvivalForest(SurvivalModel):
         self.bootstrap = bool(bootstrap)
         self.seed = int(seed)
         self.n_jobs = int(n_jobs)
+        self.leaf_prior_units = float(leaf_prior_units)
+        self.interpolation_ = "linear"  # "step" for forests saved before format 3
+        self.tail_ = NO_TAIL
 
     @classmethod
     def from_config(cls, section, seed: int, n_jobs: int = 1) -> "SurvivalForest":
         """Build from a :class:`wearcast.config.ForestSection`."""
         return cls(section.mode, section.n_trees, section.predictors_per_split, section.min_events_per_leaf,
                    section.max_depth, section.time_grid_points, seed=seed, n_jobs=n_jobs,
-                   grow_on=section.grow_on)
+                   grow_on=section.grow_on, leaf_prior_units=section.leaf_prior_units)
 
     def settings(self) -> dict:
         return {"mode": self.mode, "n_trees": self.n_trees, "predictors_per_split": self.predictors_per_split,
                 "min_events_per_leaf": self.min_events_per_leaf, "max_depth": self.max_depth,
                 "time_grid_points": self.time_grid_points, "bootstrap": self.bootstrap,
-                "seed": self.seed, "n_jobs": self.n_jobs, "grow_on": self.grow_on}
+                "seed": self.seed, "n_jobs": self.n_jobs, "grow_on": self.grow_on,
+                "leaf_prior_units": self.leaf_prior_units}
 
     def unfitted_copy(self, seed: int) -> "SurvivalForest":
         return type(self)(**{**self.settings(), "seed": int(seed)})
@@ -170,6 +186,8 @@ class SurvivalForest(SurvivalModel):
         life = table.frame["life"].to_numpy()
         n_units = int(units.max()) + 1
         self.grid_ = failure_age_grid(exit, event, self.time_grid_points)
+        self.tail_ = fit_power_tail(entry, exit, event, anchor=float(self.grid_[-1]))
+        self.interpolation_ = "linear"
         rng = np.random.default_rng(self.seed)
         self.tree_seeds_ = rng.integers(0, 2**63 - 1, size=self.n_trees, dtype=np.int64)
         scoring_seed = int(rng.integers(0, 2**63 - 1))
@@ -187,13 +205,14 @@ class SurvivalForest(SurvivalModel):
                         point_rows, point_X, point_terms)
         oob = OOBAccumulator(event[lives], exit[lives], units[lives], self.n_trees, scored)
         jobs = (delayed(self._grow_one)(int(s), data) for s in self.tree_seeds_)
-        trees, hazards = [], []
+        trees, hazards, ratios = [], [], []
         for grown in Parallel(n_jobs=self.n_jobs, prefer="threads", return_as="generator")(jobs):
             trees.append(grown.tree)
             hazards.append(grown.leaf_hazard)
+            ratios.append(grown.tail_ratio)
             if self.bootstrap:
                 oob.add(grown.life_risk, grown.counts)
-        self._set_trees(trees, hazards)
+        self._set_trees(trees, hazards, ratios)
         self.oob_risk_ = oob.risk() if self.bootstrap else np.full(len(lives), np.nan)
         self.oob_concordance_ = oob.curve[-1][1] if oob.curve else float("nan")
         self.oob_curve_ = pd.DataFrame(oob.curve, columns=["trees", "oob_concordance", "lives_scored"])
@@ -215,7 +234,7 @@ class SurvivalForest(SurvivalModel):
             point_X, point_residual, point_rows = np.ascontiguousarray(data.X[points]), residual[points], points
         else:  # an episode's residual: its failure minus the expected failures summed over its rows
             point_weights = counts[data.units[data.point_rows]].astype(float)
-            _, expected = pooled_hazard_of_groups(data.index, data.point_terms, point_weights)
+            pooled, expected = pooled_hazard_of_groups(data.index, data.point_terms, point_weights)
             points = np.flatnonzero(point_weights > 0)
             point_rows = data.point_rows[points]
             point_X, point_residual = data.point_X[points], data.event[point_rows] - expected[points]
@@ -223,13 +242,16 @@ class SurvivalForest(SurvivalModel):
             point_X, point_residual, weights[point_rows], data.event[point_rows], max_features=self._max_features(),
             max_depth=self.max_depth, min_events=self.min_events_per_leaf, random_state=tree_seed)
         leaf = route(regressor, node_to_leaf, data.X)
-        hazard = leaf_hazards_indexed(data.index, leaf, tree.n_leaves, weights)
+        hazard = leaf_hazards_indexed(data.index, leaf, tree.n_leaves, weights, np.diff(pooled), self.leaf_prior_units)
+        tail_ratio = leaf_tail_ratio(hazard, pooled[data.index.grid_at + 1],
+                                     int(grid_column(self.grid_, self.tail_.from_age)))
         life_risk = hazard.sum(axis=1, dtype=np.float64)[leaf[data.lives]]
-        return _GrownTree(tree, hazard, life_risk, counts)
+        return _GrownTree(tree, hazard, tail_ratio, life_risk, counts)
 
-    def _set_trees(self, trees: list[FlatTree], hazards: list[np.ndarray]) -> None:
+    def _set_trees(self, trees: list[FlatTree], hazards: list[np.ndarray], tail_ratios: list[np.ndarray]) -> None:
         self.trees_ = trees
         self.leaf_hazards_ = hazards
+        self.leaf_tail_ratios_ = tail_ratios
         self.leaf_risks_ = [h.sum(axis=1, dtype=np.float64) for h in hazards]
 
     # -- prediction ----------------------------------------------------------
@@ -241,20 +263,42 @@ class SurvivalForest(SurvivalModel):
     def _route(self, X: pd.DataFrame, ages: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Risk score (n,) and ``H(ages[i, j] | x_i)`` (n, k) in one pass of each tree.
 
-        ``ages``: days, shape (n, k); an age before the grid has ``H = 0``.
+        ``ages``: days, shape (n, k).
         """
         Xe = self._encode(X)
         ages = np.asarray(ages, float).reshape(len(Xe), -1)
-        column = grid_column(self.grid_, ages)
-        inside = column >= 0
-        safe = np.where(inside, column, 0)
         risk = np.zeros(len(Xe))
         hazard_at = np.zeros(ages.shape)
-        for tree, hazard, leaf_risk in zip(self.trees_, self.leaf_hazards_, self.leaf_risks_):
+        tail_ratio = np.zeros(len(Xe))
+        read = self._reader(ages)
+        for tree, hazard, leaf_risk, ratio in zip(self.trees_, self.leaf_hazards_, self.leaf_risks_,
+                                                  self.leaf_tail_ratios_):
             leaf = apply_tree(tree, Xe)
             risk += leaf_risk[leaf]
-            hazard_at += np.where(inside, hazard[leaf[:, None], safe], 0.0)
+            hazard_at += read(hazard, leaf[:, None])
+            tail_ratio += ratio[leaf]
+        hazard_at += tail_ratio[:, None] * self.tail_.increment(ages)
         return risk / len(self.trees_), hazard_at / len(self.trees_)
+
+    def _reader(self, ages: np.ndarray):
+        """``read(hazard, leaf)``: a tree's leaf hazards (n_leaves, m) at ``ages``
+        for the rows' leaves ``leaf`` (broadcasting with ``ages``); linear
+        between grid ages (0 at age 0), or the step of forests saved before
+        format 3."""
+        if self.interpolation_ == "step":
+            column = grid_column(self.grid_, ages)
+            inside = column >= 0
+            safe = np.where(inside, column, 0)
+            return lambda hazard, leaf: np.where(inside, hazard[leaf, safe], 0.0)
+        lo, hi, f = grid_weights(self.grid_, ages)
+        lo_in, hi_in = lo > 0, hi > 0
+        lo_col, hi_col = np.maximum(lo - 1, 0), np.maximum(hi - 1, 0)
+
+        def read(hazard, leaf):
+            low = np.where(lo_in, hazard[leaf, lo_col], 0.0)
+            high = np.where(hi_in, hazard[leaf, hi_col], 0.0)
+            return low + f * (high - low)
+        return read
 
     def risk_score(self, X: pd.DataFrame) -> np.ndarray:
         """Ensemble cumulative hazard summed over the grid ages, shape (n,)."""
@@ -280,11 +324,15 @@ class SurvivalForest(SurvivalModel):
     def cumulative_hazard(self, X: pd.DataFrame, times: np.ndarray) -> np.ndarray:
         """``H(t_j | x_i)`` on a shared age grid, shape (n, m), float64."""
         Xe = self._encode(X)
-        column = grid_column(self.grid_, np.asarray(times, float))
-        inside = column >= 0
-        out = np.zeros((len(Xe), len(column)))
-        for tree, hazard in zip(self.trees_, self.leaf_hazards_):
-            out[:, inside] += hazard[apply_tree(tree, Xe)][:, column[inside]]
+        times = np.asarray(times, float)
+        read = self._reader(times[None, :])
+        out = np.zeros((len(Xe), len(times)))
+        tail_ratio = np.zeros(len(Xe))
+        for tree, hazard, ratio in zip(self.trees_, self.leaf_hazards_, self.leaf_tail_ratios_):
+            leaf = apply_tree(tree, Xe)
+            out += read(hazard, leaf[:, None])
+            tail_ratio += ratio[leaf]
+        out += tail_ratio[:, None] * self.tail_.increment(times)[None, :]
         return out / len(self.trees_)
 
     def oob_risk(self, table) -> np.ndarray:
@@ -327,6 +375,7 @@ class SurvivalForest(SurvivalModel):
             "missing_left": np.concatenate([t.missing_left for t in self.trees_]),
             "leaf": np.concatenate([t.leaf for t in self.trees_]),
             "leaf_hazard": np.concatenate(self.leaf_hazards_, axis=0).astype(np.float32),
+            "leaf_tail_ratio": np.concatenate(self.leaf_tail_ratios_).astype(np.float64),
         }
         buffer = io.BytesIO()
         np.savez(buffer, **arrays)
@@ -334,7 +383,7 @@ class SurvivalForest(SurvivalModel):
             "format_version": FORMAT_VERSION, "model": self.name, "settings": self.settings(),
             "covariates": list(self.covariates_), "levels": self.levels_, "feature_names": self.feature_names_,
             "oob_concordance": self.oob_concordance_, "oob_curve": self.oob_curve_.to_dict(orient="list"),
-            "n_training_units": self.n_training_units_,
+            "n_training_units": self.n_training_units_, "tail": self.tail_.to_dict(),
         }
         return [_atomic.write_json(folder / SETTINGS_FILE, settings),
                 _atomic.write_bytes(folder / ARRAYS_FILE, buffer.getvalue())]
@@ -354,7 +403,15 @@ class SurvivalForest(SurvivalModel):
             raise BundleError(f"{folder / SETTINGS_FILE}: format_version {version!r} is not one this wearcast "
                               f"reads ({', '.join(map(str, READABLE_VERSIONS))}); refit and save with this "
                               "wearcast version, or load it with the version that wrote it.")
-        model = cls(**{"grow_on": "rows" if version == 1 else "episodes", **meta["settings"]})
+        # forests saved before format 3 had plain leaves (prior 0), a step between grid ages and no tail
+        model = cls(**{"grow_on": "rows" if version == 1 else "episodes", "leaf_prior_units": 0.0,
+                       **meta["settings"]})
+        model.interpolation_ = "linear" if version >= 3 else "step"
+        try:
+            model.tail_ = PowerTail.from_dict(meta["tail"]) if version >= 3 else NO_TAIL
+        except (KeyError, TypeError, ValueError) as exc:
+            raise BundleError(f"{folder / SETTINGS_FILE}: the tail past the last failure age is damaged ({exc}); "
+                              "re-save the model.") from exc
         model.covariates_ = tuple(meta["covariates"])
         model.levels_ = {k: list(v) for k, v in meta["levels"].items()}
         model.feature_names_ = list(meta["feature_names"])
@@ -364,12 +421,15 @@ class SurvivalForest(SurvivalModel):
         model.oob_curve_ = pd.DataFrame(meta["oob_curve"])
         model.n_training_units_ = meta["n_training_units"]
         node_ends = np.cumsum(arrays["tree_nodes"])
-        trees, hazards, leaf_start = [], [], 0
+        trees, hazards, ratios, leaf_start = [], [], [], 0
+        tail_ratios = arrays.get("leaf_tail_ratio")
         for start, end in zip(np.concatenate([[0], node_ends[:-1]]), node_ends):
             tree = FlatTree(*(arrays[k][start:end] for k in ("feature", "threshold", "left", "right",
                                                                   "missing_left", "leaf")))
             trees.append(tree)
             hazards.append(arrays["leaf_hazard"][leaf_start:leaf_start + tree.n_leaves])
+            ratios.append(np.ones(tree.n_leaves) if tail_ratios is None
+                          else tail_ratios[leaf_start:leaf_start + tree.n_leaves])
             leaf_start += tree.n_leaves
-        model._set_trees(trees, hazards)
+        model._set_trees(trees, hazards, ratios)
         return model
