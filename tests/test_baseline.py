@@ -29,14 +29,17 @@ def test_zero_eta_equals_lifelines_nelson_aalen_with_entry(macs):
     naf = NelsonAalenFitter(nelson_aalen_smoothing=False).fit(exit, event, entry=entry)
     grid = naf.cumulative_hazard_.index.to_numpy(float)
     # up to the oldest failure; past it lifelines stays flat and wearcast continues with its tail
-    upto = grid <= exit[event].max()
-    np.testing.assert_allclose(base.at(grid[upto]), naf.cumulative_hazard_.iloc[:, 0].to_numpy()[upto],
+    np.testing.assert_allclose(base.steps_at(grid), naf.cumulative_hazard_.iloc[:, 0].to_numpy(),
                                rtol=1e-12, atol=1e-14)
-    assert (base.at(grid[~upto]) > base.at(exit[event].max())).all()
-    grid = grid[upto]
+    # up to the tail's anchor (the tenth-oldest failure) that is also what the model uses; past it the tail
+    tail = base.tail_of()
+    upto = grid <= tail.anchor
+    np.testing.assert_array_equal(base.at(grid[upto]), base.steps_at(grid[upto]))
+    np.testing.assert_allclose(base.at(grid[~upto]), base.steps_at(tail.anchor) + tail.increment(grid[~upto]))
+    assert np.sort(exit[event])[-10] == tail.anchor
     # Ignoring entry gives a different (biased) curve, so the check has teeth.
     ignoring = NelsonAalenFitter(nelson_aalen_smoothing=False).fit(exit, event)
-    assert not np.allclose(base.at(grid), ignoring.cumulative_hazard_at_times(grid).to_numpy())
+    assert not np.allclose(base.steps_at(grid), ignoring.cumulative_hazard_at_times(grid).to_numpy())
     assert base.max_age == pytest.approx(exit[event].max())
 
 
@@ -46,9 +49,12 @@ def test_step_function_shape(macs):
     first, last = base.ages["all"][0], base.ages["all"][-1]
     assert base.at(first - 1e-9) == 0.0  # 0 before the first failure
     assert base.at(first) > 0.0  # right-continuous: the jump belongs to the failure age
-    # past the last failure the power-law tail carries the hazard on (test_tail.py checks its fit)
-    assert base.at(last + 1000.0) > base.at(last)
-    assert base.at(last + 1000.0) - base.at(last) == pytest.approx(base.tail_of().increment(last + 1000.0))
+    # the estimate is flat after the last failure; the model's curve carries on with the power-law
+    # tail from the tail's anchor (test_tail.py checks its fit)
+    assert base.steps_at(last + 1000.0) == base.steps_at(last)
+    anchor = base.tail_of().anchor
+    assert base.at(last + 1000.0) > base.at(last) > base.at(anchor)
+    assert base.at(last + 1000.0) == pytest.approx(base.steps_at(anchor) + base.tail_of().increment(last + 1000.0))
     grid = np.linspace(0, last + 5, 200)
     eta = np.array([-1.0, 0.0, 2.0])[:, None]
     curves = base.survival(eta, grid)
@@ -71,7 +77,7 @@ def test_matches_lifelines_cox_baseline_without_entry():
     eta = cph.predict_log_partial_hazard(rossi).to_numpy()
     base = BaselineHazard.estimate(np.zeros(len(rossi)), rossi["week"], rossi["arrest"], eta)
     ref = cph.baseline_cumulative_hazard_
-    np.testing.assert_allclose(base.at(ref.index.to_numpy(float)), ref.iloc[:, 0].to_numpy(), rtol=1e-10)
+    np.testing.assert_allclose(base.steps_at(ref.index.to_numpy(float)), ref.iloc[:, 0].to_numpy(), rtol=1e-10)
 
 
 def naive_baseline(entry, exit, event, eta, weights, ties):
@@ -110,11 +116,11 @@ def test_tied_weighted_delayed_entry_matches_naive_loop(ties):
     base = BaselineHazard.estimate(entry, exit, event, eta, weights=weights, ties=ties)
     ref = naive_baseline(entry, exit, event, eta - 300.0, weights, ties)
     ages = np.array(sorted(ref))
-    np.testing.assert_allclose(base.at(ages) * np.exp(300.0), [ref[a] for a in ages], rtol=1e-10)
+    np.testing.assert_allclose(base.steps_at(ages) * np.exp(300.0), [ref[a] for a in ages], rtol=1e-10)
     # Efron's tie correction only raises the jumps (common practice).
     if ties == "efron":
         breslow = BaselineHazard.estimate(entry, exit, event, eta, weights=weights)
-        assert (base.at(ages) >= breslow.at(ages) * (1 - 1e-12)).all()
+        assert (base.steps_at(ages) >= breslow.steps_at(ages) * (1 - 1e-12)).all()
 
 
 @pytest.mark.parametrize("ties", ["breslow", "efron"])
@@ -172,14 +178,16 @@ def test_linear_interpolation_agrees_at_failure_ages_and_fills_gaps():
     lin = BaselineHazard.estimate(d["W"], d["T"], d["D"].astype(bool), interpolation="linear")
     fail_ages = np.unique(d["T"][d["D"] == 1])
     naf = NelsonAalenFitter(nelson_aalen_smoothing=False).fit(d["T"], d["D"], entry=d["W"])
-    np.testing.assert_allclose(lin.at(fail_ages), naf.cumulative_hazard_.loc[fail_ages].iloc[:, 0], rtol=1e-12)
+    np.testing.assert_allclose(lin.steps_at(fail_ages), naf.cumulative_hazard_.loc[fail_ages].iloc[:, 0], rtol=1e-12)
     mids = (fail_ages[1:] + fail_ages[:-1]) / 2
-    assert np.all(lin.at(mids) > step.at(mids)) and np.all(lin.at(mids) < step.at(fail_ages[1:]))
+    assert np.all(lin.steps_at(mids) > step.steps_at(mids)) and np.all(lin.steps_at(mids) < step.steps_at(fail_ages[1:]))
     tiny = (fail_ages[1:] - fail_ages[:-1]) / 4
     assert np.all(lin.fail_probability(0.0, mids, 0.0 + tiny.min()) > 0)
     assert np.all(step.fail_probability(0.0, mids[:3], 1e-9) == 0)
-    # past the last failure both carry on with the same tail
+    # past the anchor both carry on with the same tail
     beyond = np.array([fail_ages[-1] + 10])
-    assert lin.at(beyond)[0] - lin.at(fail_ages[-1:])[0] == pytest.approx(lin.tail_of().increment(beyond)[0])
-    assert lin.at(beyond)[0] - lin.at(fail_ages[-1:])[0] == pytest.approx(step.at(beyond)[0] - step.at(fail_ages[-1:])[0])
+    anchor = lin.tail_of().anchor
+    assert anchor in fail_ages and step.tail_of() == lin.tail_of()
+    assert lin.at(beyond)[0] == pytest.approx(lin.steps_at(anchor) + lin.tail_of().increment(beyond)[0])
+    assert lin.at(beyond)[0] - lin.at(anchor) == pytest.approx(step.at(beyond)[0] - step.at(anchor))
     assert BaselineHazard.from_dict(lin.to_dict()).interpolation == "linear"

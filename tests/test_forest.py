@@ -151,8 +151,12 @@ def test_single_unsplit_tree_equals_lifelines_nelson_aalen_with_entry():
     np.testing.assert_array_equal(model.grid_, np.unique(d["T"][d["D"] == 1]))
     expected = ref.cumulative_hazard_at_times(model.grid_).to_numpy()
     np.testing.assert_allclose(model.leaf_hazards_[0][0], expected, rtol=1e-6)
+    # the model follows it up to the tail's anchor (the tenth-oldest failure), then the tail
+    upto = model.grid_ <= model.tail_.anchor
     got = model.cumulative_hazard_at(frame[["x"]].iloc[:len(model.grid_)], model.grid_)
-    np.testing.assert_allclose(got, expected, rtol=1e-6)
+    np.testing.assert_allclose(got[upto], expected[upto], rtol=1e-6)
+    assert model.tail_.anchor == np.sort(d["T"][d["D"] == 1])[-10]
+    np.testing.assert_allclose(got[~upto], expected[upto][-1] + model.tail_.increment(model.grid_[~upto]), rtol=1e-6)
 
 
 @pytest.fixture(scope="module")
@@ -557,7 +561,7 @@ def test_small_fleet_has_no_exact_zeros_and_a_tail_past_the_oldest_failure():
     curves = model.survival(X_now, ages)
     assert_valid_survival(curves)
     assert (np.diff(model.cumulative_hazard(X_now, ages), axis=1) > 0).all()
-    assert model.tail_.anchor == last and model.tail_.rate > 0
+    assert model.tail_.anchor in model.grid_ and model.tail_.anchor < last and model.tail_.rate > 0
 
 
 def test_forest_hazard_is_linear_between_grid_ages():

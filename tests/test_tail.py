@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from scipy.optimize import minimize
 
-from wearcast.models._tail import NO_TAIL, PowerTail, fit_power_tail, tail_start
+from wearcast.models._tail import NO_TAIL, PowerTail, fit_power_tail, sparse_end, tail_start
 
 
 def _macs():
@@ -32,7 +32,8 @@ def test_whole_record_tail_is_lifelines_weibull_fit_with_entry():
     entry, exit_, event = _macs()
     ref = WeibullFitter().fit(exit_, event, entry=entry)
     tail = fit_power_tail(entry, exit_, event, min_failures=10_000)
-    assert tail.from_age == 0.0 and tail.anchor == exit_[event].max()
+    # the curve takes over at the tenth-oldest failure
+    assert tail.from_age == 0.0 and tail.anchor == np.sort(exit_[event])[-10]
     assert tail.shape == pytest.approx(ref.rho_, rel=1e-4)
     assert tail.rate == pytest.approx((tail.anchor / ref.lambda_) ** ref.rho_, rel=1e-4)
     assert tail.failures == event.sum()
@@ -89,6 +90,8 @@ def test_fitted_part_holds_the_older_failures():
     assert tail_start(ages) == 50.0
     assert tail_start(ages[:30]) == 10.0  # 30 ages: at least 20 of them
     assert tail_start(ages[:15]) == 0.0  # fewer than 20: all of them
+    # the curve replaces the steps from the tenth-oldest failure (the youngest when fewer)
+    assert sparse_end(ages) == 91.0 and sparse_end(ages[:4]) == 1.0
 
 
 def test_increment_is_zero_before_the_anchor_and_rises_after():
@@ -105,7 +108,8 @@ def test_few_failures_give_a_constant_hazard_and_none_give_no_tail():
     entry = np.zeros(5)
     exit_ = np.array([10.0, 20.0, 30.0, 40.0, 50.0])
     tail = fit_power_tail(entry, exit_, np.array([False, True, False, True, False]))
-    # two failures: shape fixed at 1, rate = failures / time at risk (scaled by the anchor, 40 days)
-    assert tail.shape == 1.0
-    assert tail.rate == pytest.approx(2.0 / (np.minimum(exit_, 1e9).sum() / 40.0))
+    # two failures: shape fixed at 1, anchor at the youngest of them (fewer than ten), rate =
+    # failures / time at risk with ages scaled by the anchor (20 days)
+    assert tail.shape == 1.0 and tail.anchor == 20.0
+    assert tail.rate == pytest.approx(2.0 / (exit_.sum() / 20.0))
     assert fit_power_tail(entry, exit_, np.zeros(5, bool)) == NO_TAIL

@@ -322,18 +322,19 @@ def grid_weights(grid: np.ndarray, ages: np.ndarray) -> tuple[np.ndarray, np.nda
     return np.where(at_end, len(knots) - 1, lo), np.where(at_end, len(knots) - 1, hi), np.where(at_end, 0.0, f)
 
 
-def leaf_tail_ratio(leaf_hazard: np.ndarray, pooled_on_grid: np.ndarray, from_column: int) -> np.ndarray:
+def leaf_tail_ratio(leaf_hazard: np.ndarray, pooled_on_grid: np.ndarray, from_column: int,
+                    to_column: int = -1) -> np.ndarray:
     """Each leaf's hazard relative to its tree's over the ages the tail was fitted on, shape (n_leaves,).
 
     ``leaf_hazard`` (n_leaves, m) and ``pooled_on_grid`` (m,) cumulative
     hazards on the grid; the ratio is of their rise from grid column
-    ``from_column`` (-1: from age 0) to the last column; 1 where the tree's
-    pooled hazard does not rise there.
+    ``from_column`` (-1: from age 0) to ``to_column`` (the tail's anchor); 1
+    where the tree's pooled hazard does not rise there.
     """
     leaf_hazard = np.asarray(leaf_hazard, float)
     start_leaf = leaf_hazard[:, from_column] if from_column >= 0 else 0.0
     start_pool = pooled_on_grid[from_column] if from_column >= 0 else 0.0
-    rise = float(pooled_on_grid[-1] - start_pool)
+    rise = float(pooled_on_grid[to_column] - start_pool)
     if not rise > 0:
         return np.ones(leaf_hazard.shape[0])
-    return np.maximum(leaf_hazard[:, -1] - start_leaf, 0.0) / rise
+    return np.maximum(leaf_hazard[:, to_column] - start_leaf, 0.0) / rise

@@ -45,6 +45,9 @@ TAIL_SHARE = 0.5
 SHAPE_BOUNDS = (0.2, 10.0)
 #: Below this many failures in the fitted part, the shape is fixed at 1 (a constant hazard).
 MIN_FAILURES_FOR_SHAPE = 3
+#: The curve takes over from the step estimate at the age of this many-th oldest failure:
+#: among the last few failures few units are at risk, so each one moves the step a lot.
+SPARSE_END_FAILURES = 10
 
 
 @dataclass(frozen=True)
@@ -96,6 +99,12 @@ def tail_start(failure_ages: np.ndarray, min_failures: int = TAIL_MIN_FAILURES, 
     return float(ages[ages.size - keep - 1])
 
 
+def sparse_end(failure_ages: np.ndarray, n_last: int = SPARSE_END_FAILURES) -> float:
+    """The age of the ``n_last``-th oldest failure (the youngest one when there are fewer)."""
+    ages = np.sort(np.asarray(failure_ages, float))
+    return float(ages[max(ages.size - n_last, 0)])
+
+
 def fit_power_tail(
     entry: np.ndarray,
     exit: np.ndarray,
@@ -108,8 +117,10 @@ def fit_power_tail(
     share: float = TAIL_SHARE,
 ) -> PowerTail:
     """Fit the tail to rows (``entry``/``exit`` days, ``event`` bool, log risk
-    ``eta`` and case ``weights``, all shape (n,)). ``anchor`` defaults to the
-    oldest failure age. Returns :data:`NO_TAIL` without failures."""
+    ``eta`` and case ``weights``, all shape (n,)). ``anchor``, the age from
+    which the curve replaces the step estimate, defaults to the age of the
+    :data:`SPARSE_END_FAILURES`-th oldest failure (the oldest one in a fleet
+    with fewer). Returns :data:`NO_TAIL` without failures."""
     entry = np.asarray(entry, float).ravel()
     exit = np.asarray(exit, float).ravel()
     event = np.asarray(event, bool).ravel()
@@ -119,7 +130,7 @@ def fit_power_tail(
     failed = event & (weights > 0)
     if not failed.any():
         return NO_TAIL
-    anchor = float(exit[failed].max()) if anchor is None else float(anchor)
+    anchor = sparse_end(exit[failed]) if anchor is None else float(anchor)
     from_age = tail_start(exit[failed], min_failures, share)
     rows = (exit > from_age) & (weights > 0)
     b = exit[rows] / anchor

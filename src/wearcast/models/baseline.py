@@ -170,8 +170,17 @@ class BaselineHazard:
     def at(self, ages: np.ndarray, strata=None) -> np.ndarray:
         """``H0(age)``, same shape as ``ages`` (days); ``strata`` broadcasts with ``ages``.
 
-        Without ``strata`` the baseline must have a single stratum.
+        The step estimate up to each stratum's tail anchor, the fitted tail
+        past it. Without ``strata`` the baseline must have a single stratum.
         """
+        return self._at(ages, strata, with_tail=True)
+
+    def steps_at(self, ages: np.ndarray, strata=None) -> np.ndarray:
+        """The Breslow / Nelson–Aalen estimate itself at ``ages`` (no tail: flat
+        after the last failure age); shapes as :meth:`at`."""
+        return self._at(ages, strata, with_tail=False)
+
+    def _at(self, ages, strata, with_tail: bool) -> np.ndarray:
         ages = np.asarray(ages, float)
         if strata is None:
             if len(self.ages) != 1:
@@ -179,20 +188,22 @@ class BaselineHazard:
                     f"this baseline hazard has {len(self.ages)} strata ({', '.join(self.strata)}); pass strata="
                 )
             (key,) = self.ages
-            return self._evaluate(key, ages)
+            return self._evaluate(key, ages, with_tail)
         labels = _labels(strata, np.broadcast_shapes(np.shape(strata), ages.shape))
         ages = np.broadcast_to(ages, labels.shape)
         out = np.zeros(labels.shape)
         for label in np.unique(labels):
             mask = labels == label
             key = self._key(label)
-            out[mask] = self._evaluate(key, ages[mask])
+            out[mask] = self._evaluate(key, ages[mask], with_tail)
         return out
 
-    def _evaluate(self, key: str, query):
+    def _evaluate(self, key: str, query, with_tail: bool = True):
         ages, cumhaz = self.ages[key], self.cumhaz[key]
-        steps = linear_at(ages, cumhaz, query) if self.interpolation == "linear" else step_at(ages, cumhaz, query)
-        return steps + self.tails.get(key, NO_TAIL).increment(query)
+        tail = self.tails.get(key) if with_tail else None
+        upto = query if tail is None else np.minimum(query, tail.anchor)  # the curve takes over there
+        steps = linear_at(ages, cumhaz, upto) if self.interpolation == "linear" else step_at(ages, cumhaz, upto)
+        return steps if tail is None else steps + tail.increment(query)
 
     def tail_of(self, stratum=None) -> PowerTail:
         """The tail of one stratum (the only one when ``stratum`` is None); :data:`NO_TAIL` if it has none."""

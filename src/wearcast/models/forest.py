@@ -44,7 +44,7 @@ from wearcast.models._forest_leaves import (
     GroupTerms, RiskIndex, failure_age_grid, grid_column, grid_weights, group_terms, leaf_hazards_indexed,
     leaf_tail_ratio, pooled_cumulative_hazard, pooled_hazard_of_groups, risk_index,
 )
-from wearcast.models._tail import NO_TAIL, PowerTail, fit_power_tail
+from wearcast.models._tail import NO_TAIL, PowerTail, fit_power_tail, sparse_end
 from wearcast.models._forest_oob import (
     MAX_SCORED_LIVES, OOBAccumulator, bootstrap_draw, harrell_c, last_rows_of_lives,
 )
@@ -186,7 +186,9 @@ class SurvivalForest(SurvivalModel):
         life = table.frame["life"].to_numpy()
         n_units = int(units.max()) + 1
         self.grid_ = failure_age_grid(exit, event, self.time_grid_points)
-        self.tail_ = fit_power_tail(entry, exit, event, anchor=float(self.grid_[-1]))
+        # the curve takes over at the grid age at or before the sparse end of the records
+        self.tail_ = fit_power_tail(entry, exit, event, anchor=float(
+            self.grid_[max(int(grid_column(self.grid_, sparse_end(exit[event]))), 0)]))
         self.interpolation_ = "linear"
         rng = np.random.default_rng(self.seed)
         self.tree_seeds_ = rng.integers(0, 2**63 - 1, size=self.n_trees, dtype=np.int64)
@@ -244,7 +246,8 @@ class SurvivalForest(SurvivalModel):
         leaf = route(regressor, node_to_leaf, data.X)
         hazard = leaf_hazards_indexed(data.index, leaf, tree.n_leaves, weights, np.diff(pooled), self.leaf_prior_units)
         tail_ratio = leaf_tail_ratio(hazard, pooled[data.index.grid_at + 1],
-                                     int(grid_column(self.grid_, self.tail_.from_age)))
+                                     int(grid_column(self.grid_, self.tail_.from_age)),
+                                     int(grid_column(self.grid_, self.tail_.anchor)))
         life_risk = hazard.sum(axis=1, dtype=np.float64)[leaf[data.lives]]
         return _GrownTree(tree, hazard, tail_ratio, life_risk, counts)
 
@@ -284,7 +287,10 @@ class SurvivalForest(SurvivalModel):
         """``read(hazard, leaf)``: a tree's leaf hazards (n_leaves, m) at ``ages``
         for the rows' leaves ``leaf`` (broadcasting with ``ages``); linear
         between grid ages (0 at age 0), or the step of forests saved before
-        format 3."""
+        format 3. Past the tail's anchor the leaves stay at their anchor value
+        (the tail adds the rest)."""
+        if self.tail_ is not NO_TAIL:
+            ages = np.minimum(ages, self.tail_.anchor)
         if self.interpolation_ == "step":
             column = grid_column(self.grid_, ages)
             inside = column >= 0
