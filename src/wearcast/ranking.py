@@ -162,6 +162,8 @@ def rank_units(
         units[col] = labels
     units["age_days"] = ages
     units["age_years"] = ages / DAYS_PER_YEAR
+    oldest_failure = oldest_failure_age(table)
+    units["beyond_record_age"] = ages + max(horizons) > oldest_failure
     for j, h in enumerate(horizons):
         _interval_columns(units, probability_column(h), p[:, j], refits, j)
     units["rank"] = ranks
@@ -189,7 +191,20 @@ def rank_units(
     forecast = fleet_forecast(p, members, horizons, refits)
     summary = _summary(table, model, refits, horizons, rank_h, top_k, stable_share, units, forecast,
                        drivers_note)
+    summary.update(oldest_failure_age_days=plain_number(oldest_failure),
+                   units_beyond_record_age=int(units["beyond_record_age"].sum()),
+                   units_older_than_record_age=int((ages > oldest_failure).sum()))
     return RankedList(units, forecast, summary)
+
+
+def oldest_failure_age(table) -> float:
+    """The oldest age (days) at which a failure is on record in ``table`` (0 without failures).
+
+    Past it every model's hazard rests on its fitted tail (docs/models.md); the
+    ranked list flags units whose longest window reaches past it.
+    """
+    failed = np.asarray(table.event, bool)
+    return float(np.asarray(table.exit, float)[failed].max()) if failed.any() else 0.0
 
 
 def fleet_forecast(p: np.ndarray, members, horizons, refits: RefitSummary | None) -> pd.DataFrame:

@@ -32,7 +32,7 @@ REPORT_FILE = "report.html"
 FIGURES_DIR = "figures"
 
 #: Columns of ranked_units.csv that are never shown as group columns.
-_NOT_GROUPS = {"unit_id", "age_days", "age_years", "rank", "rank_low", "rank_high", "life", "entry_age", "exit_age"}
+_NOT_GROUPS = {"unit_id", "age_days", "age_years", "beyond_record_age", "rank", "rank_low", "rank_high", "life", "entry_age", "exit_age"}
 
 
 @dataclass

@@ -118,7 +118,7 @@ def _top_units(inputs) -> Section:
     unit_header = "Unit" + (f" ({', '.join(c.replace('_', ' ') for c in group_cols)})" if group_cols else "")
     columns = [h.Column("Rank", "rank", h.fmt_count), h.Column(unit_header, "unit_id", numeric=False, render=unit_cell)]
     if "age_days" in top.columns:
-        columns.append(h.Column("Age (years)", "age_days", h.fmt_years))
+        columns.append(h.Column("Age (years)", "age_days", h.fmt_years, render=_age_cell))
     # the ranking horizon with its interval, the other horizons as plain values to keep the table narrow
     columns.append(h.Column(f"Within {horizon} d ({level} interval)", pcol, h.fmt_percent,
                             render=_interval_cell(pcol, h.fmt_percent)))
@@ -140,7 +140,37 @@ def _top_units(inputs) -> Section:
     table = h.table(top, columns, row_key="unit_id", cls="top-units", table_id="top-units",
                     caption=f"Units ranked by probability of failure within {horizon} days; probabilities "
                             "are for a unit working today. Age in years since install.")
-    return f"<h3>Units to look at first</h3>{fig_html}{table}", {"top_units": png}
+    return f"<h3>Units to look at first</h3>{fig_html}{table}{_beyond_record_note(ranked, top, inputs.summary or {})}", \
+        {"top_units": png}
+
+
+def _flagged(row: pd.Series) -> bool:
+    value = row.get("beyond_record_age")
+    return not h.is_missing(value) and str(value).lower() == "true"
+
+
+def _age_cell(row: pd.Series) -> str:
+    age = h.number(row["age_days"], h.fmt_years, "age_days")
+    return age + ('<sup class="flag" title="window reaches past the oldest failure on record">†</sup>'
+                  if _flagged(row) else "")
+
+
+def _beyond_record_note(ranked: pd.DataFrame, top: pd.DataFrame, summary: dict) -> str:
+    """One sentence on the units whose window reaches past the oldest failure on record."""
+    if "beyond_record_age" not in ranked.columns:
+        return ""
+    flagged = int(ranked.apply(_flagged, axis=1).sum())
+    if not flagged:
+        return ""
+    in_top = int(top.apply(_flagged, axis=1).sum())
+    oldest = summary.get("oldest_failure_age_days")
+    at = f" ({h.fmt_years(float(oldest))} years)" if isinstance(oldest, (int, float)) else ""
+    return h.note(
+        f"† {flagged:,} unit{'s' if flagged != 1 else ''} in service ({in_top:,} in this list) "
+        f"{'are' if flagged != 1 else 'is'} old enough that the longest window reaches past the oldest "
+        f"failure on record{at}. No past unit failed at those ages, so the probability there is carried "
+        "on by a curve fitted to the oldest records: treat it as less certain than the rest and check "
+        "these units' condition directly.")
 
 
 def _list_length(ranked: pd.DataFrame, summary: dict, default: int) -> int:
