@@ -113,3 +113,18 @@ def test_few_failures_give_a_constant_hazard_and_none_give_no_tail():
     assert tail.shape == 1.0 and tail.anchor == 20.0
     assert tail.rate == pytest.approx(2.0 / (exit_.sum() / 20.0))
     assert fit_power_tail(entry, exit_, np.zeros(5, bool)) == NO_TAIL
+
+
+def test_a_stratum_without_failures_keeps_its_flat_zero_and_a_loaded_empty_tail_is_inactive():
+    from wearcast.models.baseline import BaselineHazard
+
+    entry, exit_ = np.zeros(6), np.array([5.0, 6.0, 7.0, 8.0, 9.0, 10.0])
+    event = np.array([True, False, True, False, False, False])
+    strata = np.array(["a", "a", "a", "b", "b", "b"])
+    base = BaselineHazard.estimate(entry, exit_, event, strata=strata)
+    assert base.tails["b"] == NO_TAIL and not base.tails["b"].active and base.tails["a"].active
+    np.testing.assert_array_equal(base.at(np.array([3.0, 50.0]), strata="b"), [0.0, 0.0])
+    again = BaselineHazard.from_dict(base.to_dict())
+    assert not again.tails["b"].active
+    np.testing.assert_array_equal(again.at(np.array([3.0, 7.0, 50.0]), strata="a"),
+                                  base.at(np.array([3.0, 7.0, 50.0]), strata="a"))

@@ -64,10 +64,15 @@ class PowerTail:
     from_age: float
     failures: float
 
+    @property
+    def active(self) -> bool:
+        """False for :data:`NO_TAIL` (no failures to fit): the step estimate is used everywhere."""
+        return self.anchor > 0 and self.rate > 0
+
     def increment(self, ages) -> np.ndarray:
         """Cumulative hazard added past the anchor: 0 at or before it; same shape as ``ages``."""
         ages = np.asarray(ages, float)
-        if self.anchor <= 0 or self.rate <= 0:
+        if not self.active:
             return np.zeros(ages.shape)
         scaled = np.maximum(ages, self.anchor) / self.anchor
         with np.errstate(over="ignore"):

@@ -201,6 +201,7 @@ class BaselineHazard:
     def _evaluate(self, key: str, query, with_tail: bool = True):
         ages, cumhaz = self.ages[key], self.cumhaz[key]
         tail = self.tails.get(key) if with_tail else None
+        tail = tail if tail is not None and tail.active else None
         upto = query if tail is None else np.minimum(query, tail.anchor)  # the curve takes over there
         steps = linear_at(ages, cumhaz, upto) if self.interpolation == "linear" else step_at(ages, cumhaz, upto)
         return steps if tail is None else steps + tail.increment(query)

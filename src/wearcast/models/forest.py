@@ -289,7 +289,7 @@ class SurvivalForest(SurvivalModel):
         between grid ages (0 at age 0), or the step of forests saved before
         format 3. Past the tail's anchor the leaves stay at their anchor value
         (the tail adds the rest)."""
-        if self.tail_ is not NO_TAIL:
+        if self.tail_.active:
             ages = np.minimum(ages, self.tail_.anchor)
         if self.interpolation_ == "step":
             column = grid_column(self.grid_, ages)
