@@ -19,7 +19,7 @@ demo: $(STAMP)
 test: $(STAMP)
 	$(BIN)/python -m pytest -q
 
-BENCHES := bench_io bench_boosted bench_forest bench_refits bench_choice
+BENCHES := bench_io bench_boosted bench_forest bench_refits bench_choice bench_edges
 
 # Long (tens of minutes on 2 cores): each script runs wearcast beside its peers and
 # rewrites its own section of bench/README.md. Run one with e.g. `make bench BENCHES=bench_io`.
