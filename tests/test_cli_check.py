@@ -42,6 +42,8 @@ def test_good_export_prints_summary_and_writes_files(tmp_path):
         "time at risk (days)  957.0",
         "as of                2022-06-01",
         "rows in = kept + quarantined: 4 = 4 + 0",
+        "  register_ambiguous.csv (register): 3 read = 3 kept + 0 quarantined",
+        "  events_ambiguous.csv (events): 1 read = 1 kept + 0 quarantined",
         # MTBF = 957 days / 1 failure; 90 % bounds 2T / chi2(0.95; 4) and 2T / chi2(0.05; 2) with
         # chi2 quantiles 9.4877 and 0.10259 (standard chi-square table values)
         "fleet MTBF: 957 days = 2.6 years (90% bounds 202 to 18,657 days)",
@@ -99,9 +101,11 @@ def test_too_many_bad_rows_exits_65_and_writes_quarantine(tmp_path):
     quarantine = tmp_path / "out" / "quarantine.csv"
     assert result.exit_code == 65
     assert result.stderr == (
-        "error: 4 of 8 rows (50.0%) were rejected, above fleet.max_bad_share = 5.0%. Most common reason: "
-        "unit id in scientific notation (a spreadsheet turned it into a number); re-export the id column as "
-        "text (3 rows), first at events_mangled.csv line 4, column unit_id (value '1.23E+05'). Fix the export "
+        # both files are 2 of 4 rejected (50 %); the share is per file and the first of the worst is named
+        "error: register_mangled.csv: 2 of 4 rows (50.0%) were rejected, above fleet.max_bad_share = 5.0% "
+        "(taken per file). Most common reason: unit id in scientific notation (a spreadsheet turned it into a "
+        "number); re-export the id column as text (2 rows), first at line 2, column unit_id (value '1.23E+05'). "
+        "Fix the export "
         f"(or raise fleet.max_bad_share); rejected rows are listed in {quarantine}.\n"
         f"rejected rows and reasons: {quarantine}\n")
     q = pd.read_csv(quarantine, dtype=str)

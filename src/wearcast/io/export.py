@@ -3,14 +3,17 @@
 The order is fixed: read every file as text -> check whole-file problems
 (missing columns: :class:`DataError`) -> parse and check each row (a bad cell
 quarantines its row with the first reason found) -> let the builder place every
-remaining row -> prove rows read = kept + quarantined + after as_of -> stop when
-the rejected share is above ``fleet.max_bad_share``.
+remaining row -> prove rows read = kept + quarantined + after as_of, per file ->
+stop when the rejected share of any one file is above ``fleet.max_bad_share``.
+
+The share is taken per file: a small event log with many bad rows is not
+diluted by a large, clean readings file (the event log holds every failure).
 """
 
 from __future__ import annotations
 
 import datetime as dt
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -37,6 +40,8 @@ class Loaded:
     rows_kept: int
     rows_after_as_of: int
     as_of: pd.Timestamp
+    files: list = field(default_factory=list)  # one dict per file read, see _account
+    warnings: list = field(default_factory=list)  # plain sentences for the person running the check
 
 
 # -- reading -----------------------------------------------------------------
@@ -221,10 +226,11 @@ def _load_register_log(config: Config, as_of_override) -> Loaded:
     outcome = build_register_log(reg_ok, ev_ok, rd_ok, settings)
     _merge(outcome, q)
     rows_read = sum(len(t.frame) for t in (register, events, readings) if t is not None)
-    _account([t for t in (register, events, readings) if t is not None], outcome, q)
+    files = _account([(r, t) for r, t in (("register", register), ("events", events), ("readings", readings))
+                      if t is not None], outcome, q)
     q.seal()
     del register, events, readings, reg_ok, ev_ok, rd_ok  # only the life table is left to make
-    return _finish(config, outcome, q, rows_read, as_of, reading_cols + static_cols)
+    return _finish(config, outcome, q, rows_read, as_of, reading_cols + static_cols, files)
 
 
 # -- life table -------------------------------------------------------------------
@@ -295,11 +301,11 @@ def _load_life_table(config: Config, as_of_override) -> Loaded:
         keep += ["install_date", "entry_date", "exit_date"]
     outcome = build_from_intervals(ok[keep], settings, dated=dated)
     _merge(outcome, q)
-    _account([table], outcome, q)
+    files = _account([("life_table", table)], outcome, q)
     q.seal()
     rows_read = len(table.frame)
     del table, f, ok
-    return _finish(config, outcome, q, rows_read, as_of, tuple(fleet.covariates))
+    return _finish(config, outcome, q, rows_read, as_of, tuple(fleet.covariates), files)
 
 
 def _looks_dated(values: pd.Series, decimal: str) -> bool:
@@ -313,27 +319,38 @@ def _looks_dated(values: pd.Series, decimal: str) -> bool:
 
 # -- shared ending -------------------------------------------------------------------
 
-def _account(tables: list[RawTable], outcome: BuildOutcome, q: Quarantine) -> None:
-    """Every row read is exactly one of kept, quarantined, after as_of."""
-    problems = []
-    for t in tables:
+def _account(tables: list[tuple[str, RawTable]], outcome: BuildOutcome, q: Quarantine) -> list[dict]:
+    """Every row read is exactly one of kept, quarantined, after as_of; returns per file
+    ``{file, role, rows_read, rows_kept, rows_quarantined, rows_after_as_of}`` (role: the
+    ``[input]`` key that names the file)."""
+    problems, files = [], []
+    for role, t in tables:
         n = len(t.frame)
-        count = q.taken(t.name).astype(np.int64)
-        for source, index in (*outcome.kept, *outcome.after_as_of):
-            if source == t.name:
-                count += np.bincount(index, minlength=n)[:n]
+        taken = q.taken(t.name)
+        count = taken.astype(np.int64)
+        counted = {}
+        for what, pairs in (("kept", outcome.kept), ("after", outcome.after_as_of)):
+            hits = np.zeros(n, dtype=np.int64)
+            for source, index in pairs:
+                if source == t.name:
+                    hits += np.bincount(index, minlength=n)[:n]
+            count += hits
+            counted[what] = int(hits.sum())
+        files.append({"file": t.name, "role": role, "rows_read": n, "rows_kept": counted["kept"],
+                      "rows_quarantined": int(taken.sum()), "rows_after_as_of": counted["after"]})
         lines = t.frame["_line"].to_numpy()
         problems += [(t.name, int(line), int(c)) for line, c in zip(lines[count != 1][:3], count[count != 1][:3])]
     if problems:
-        rows_read = sum(len(t.frame) for t in tables)
+        rows_read = sum(len(t.frame) for _, t in tables)
         raise RuntimeError(  # a bug in wearcast, not in the export
             f"row accounting failed: read {rows_read}, kept {outcome.n_kept}, quarantined {len(q)}, "
             f"after as_of {outcome.n_after_as_of}, (file, line, times counted) {problems[:3]}. Please report this."
         )
+    return files
 
 
 def _finish(config: Config, outcome: BuildOutcome, q: Quarantine, rows_read: int, as_of,
-            covariates) -> Loaded:
+            covariates, files: list[dict]) -> Loaded:
     fleet = config.fleet
     order = list(dict.fromkeys(covariates))
     cov = [c for c in fleet.covariates if c in order]
@@ -349,7 +366,7 @@ def _finish(config: Config, outcome: BuildOutcome, q: Quarantine, rows_read: int
         table = LifeTable.from_frame(frame, cov, fleet.categorical, as_of=as_of, source=config.source,
                                      meta={"renewal": fleet.renewal, "group_by": list(fleet.group_by)})
     return Loaded(table=table, quarantine=q, rows_read=rows_read, rows_kept=rows_kept,
-                  rows_after_as_of=rows_after_as_of, as_of=as_of)
+                  rows_after_as_of=rows_after_as_of, as_of=as_of, files=files)
 
 
 def load(config: Config, as_of: dt.date | None = None) -> Loaded:
@@ -363,19 +380,26 @@ def load(config: Config, as_of: dt.date | None = None) -> Loaded:
 
 
 def bad_share_error(loaded: Loaded, frame: pd.DataFrame, max_share: float, path: Path | None) -> DataError | None:
-    """The DataError to raise when too many rows were rejected (None when within bounds)."""
-    considered = loaded.rows_read - loaded.rows_after_as_of
-    share = len(frame) / considered if considered else 0.0
-    if len(frame) == 0 or share <= max_share:
+    """The DataError to raise when too many rows of one file were rejected (None when
+    every file is within bounds). The share is per file; the worst file is named."""
+    worst = None
+    for f in loaded.files:
+        considered = f["rows_read"] - f["rows_after_as_of"]
+        share = f["rows_quarantined"] / considered if considered else 0.0
+        if f["rows_quarantined"] and share > max_share and (worst is None or share > worst[1]):
+            worst = (f, share, considered)
+    if worst is None:
         return None
-    reasons = by_reason(frame)
+    f, share, considered = worst
+    mine = frame[frame["source_file"] == f["file"]]
+    reasons = by_reason(mine)
     top = next(iter(reasons))
-    first = frame[frame["reason"] == top].iloc[0]
+    first = mine[mine["reason"] == top].iloc[0]
     where = f"rejected rows are listed in {path}" if path else "pass quarantine_dir to get the list of rejected rows"
     return DataError(
-        f"{len(frame)} of {considered} rows ({share:.1%}) were rejected, above fleet.max_bad_share = "
-        f"{max_share:.1%}. Most common reason: {top} ({reasons[top]} rows), first at {first['source_file']} "
-        f"line {first['line']}, column {first['column']} (value {first['value']!r}). Fix the export "
+        f"{f['file']}: {f['rows_quarantined']} of {considered} rows ({share:.1%}) were rejected, above "
+        f"fleet.max_bad_share = {max_share:.1%} (taken per file). Most common reason: {top} ({reasons[top]} rows), "
+        f"first at line {first['line']}, column {first['column']} (value {first['value']!r}). Fix the export "
         f"(or raise fleet.max_bad_share); {where}.",
         quarantine_path=None if path is None else str(path),
     )

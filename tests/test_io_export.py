@@ -1,0 +1,96 @@
+"""Damaged exports that used to pass with exit 0: per-file limits, plausible ranges,
+empty files, real-world dates and encodings, and what the outputs look like on disk.
+
+Fixtures are invented (an invented pump fleet at invented sites); each test writes the
+damage the way a maintenance system or a spreadsheet writes it.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from pathlib import Path
+
+import pandas as pd
+import pytest
+
+from wearcast.config import config_from_dict
+from wearcast.exceptions import DataError
+from wearcast.io import load_export
+
+START = dt.date(2016, 1, 4)
+
+
+def _day(offset: int) -> str:
+    return (START + dt.timedelta(days=offset)).isoformat()
+
+
+def fleet(folder: Path, n_units: int = 60, *, failures_every: int = 3, readings_per_unit: int = 4,
+          bad_events: int = 0, inp: dict | None = None, fleet_keys: dict | None = None,
+          events_text: str | None = None, readings_text: str | None = None, register_text: str | None = None):
+    """Write register.csv, events.csv, readings.csv of an invented fleet; return its Config.
+
+    Every ``failures_every``-th unit failed once; each unit has ``readings_per_unit``
+    readings of running_hours_per_day and vibration_mm_s. ``bad_events`` extra
+    event rows have an unparseable date. ``*_text`` replaces a file's whole text.
+    """
+    folder.mkdir(parents=True, exist_ok=True)
+    reg = ["unit_id,install_date,rated_kw,site"]
+    ev = ["unit_id,event_date,event_kind,failure_mode"]
+    rd = ["unit_id,reading_date,running_hours_per_day,vibration_mm_s"]
+    for i in range(n_units):
+        uid = f"PU-{i:04d}"
+        reg.append(f"{uid},{_day(i)},{5 + i % 4}.5,{'Northpier' if i % 2 else 'Eastmarsh'}")
+        if i % failures_every == 0:
+            ev.append(f"{uid},{_day(i + 400 + i % 50)},failure,bearing")
+        for k in range(readings_per_unit):
+            rd.append(f"{uid},{_day(i + 30 + 60 * k)},{12 + k},{1.5 + 0.4 * k:.1f}")
+    for j in range(bad_events):
+        ev.append(f"PU-{j:04d},31.31.2019,failure,seal")
+    texts = {"register.csv": register_text if register_text is not None else "\n".join(reg) + "\n",
+             "events.csv": events_text if events_text is not None else "\n".join(ev) + "\n",
+             "readings.csv": readings_text if readings_text is not None else "\n".join(rd) + "\n"}
+    for name, text in texts.items():
+        (folder / name).write_text(text, encoding="utf-8")
+    cfg = config_from_dict({
+        "input": {"register": "register.csv", "events": "events.csv", "readings": "readings.csv", **(inp or {})},
+        "fleet": {"as_of": dt.date(2019, 6, 1), "covariates": ["rated_kw", "running_hours_per_day",
+                                                                 "vibration_mm_s"],
+                  "group_by": ["site"], **(fleet_keys or {})}})
+    return cfg.__class__(**{**cfg.__dict__, "base_dir": folder})
+
+
+def _accounted(result):
+    for f in result.files:
+        assert f["rows_read"] == f["rows_kept"] + f["rows_quarantined"] + f["rows_after_as_of"], f
+    assert result.rows_read == sum(f["rows_read"] for f in result.files)
+
+
+# -- 1. the bad-row limit is per input file ---------------------------------------------
+
+def test_bad_event_rows_are_not_diluted_by_clean_readings(tmp_path):
+    # 20 failures + 3 bad rows = 13 % of the event log, but 3 of 23 + 60 + 600 = 0.4 % of all rows
+    cfg = fleet(tmp_path, 60, readings_per_unit=10, bad_events=3)
+    with pytest.raises(DataError) as err:
+        load_export(cfg, quarantine_dir=tmp_path / "out")
+    message = str(err.value)
+    assert message.startswith("events.csv: 3 of 23 rows (13.0%) were rejected, above fleet.max_bad_share = 5.0% "
+                              "(taken per file).")
+    assert "first at line 22, column event_date (value '31.31.2019')" in message
+    assert err.value.exit_code == 65
+
+
+def test_event_log_with_every_date_blank_stops(tmp_path):
+    events = "unit_id,event_date,event_kind,failure_mode\n" + "".join(
+        f"PU-{i:04d},,failure,bearing\n" for i in range(0, 60, 3))
+    cfg = fleet(tmp_path, 60, readings_per_unit=20, events_text=events)
+    with pytest.raises(DataError, match=r"^events.csv: 20 of 20 rows \(100.0%\) were rejected.*missing date"):
+        load_export(cfg)
+
+
+def test_counts_per_file_add_up(tmp_path):
+    cfg = fleet(tmp_path, 60, bad_events=1, fleet_keys={"max_bad_share": 0.10})
+    result = load_export(cfg)
+    assert [(f["file"], f["role"], f["rows_read"], f["rows_kept"], f["rows_quarantined"]) for f in result.files] == [
+        ("register.csv", "register", 60, 60, 0), ("events.csv", "events", 21, 20, 1),
+        ("readings.csv", "readings", 240, 240, 0)]
+    _accounted(result)
