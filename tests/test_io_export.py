@@ -94,3 +94,72 @@ def test_counts_per_file_add_up(tmp_path):
         ("register.csv", "register", 60, 60, 0), ("events.csv", "events", 21, 20, 1),
         ("readings.csv", "readings", 240, 240, 0)]
     _accounted(result)
+
+
+# -- 3. empty and header-only files are named ---------------------------------------------
+
+def test_header_only_register_says_it_lists_no_units(tmp_path):
+    cfg = fleet(tmp_path, 30, register_text="unit_id,install_date,rated_kw,site\n")
+    with pytest.raises(DataError) as err:
+        load_export(cfg)
+    assert str(err.value) == (
+        "register.csv has a header but no rows: the register lists no units. Export the file again with its rows "
+        "(one row per unit with its install date); check the export's filter or date range.")
+
+
+def test_header_only_event_log_stops_when_a_large_fleet_shows_no_failure(tmp_path):
+    # 200 units running about 3 years each: some 600 unit-years and not one failure
+    cfg = fleet(tmp_path, 200, readings_per_unit=1, events_text="unit_id,event_date,event_kind,failure_mode\n")
+    with pytest.raises(DataError) as err:
+        load_export(cfg)
+    message = str(err.value)
+    assert message.startswith("events.csv: no failure in ")
+    assert "unit-years at risk over 200 units (0 of its 0 rows kept)" in message
+    assert message.endswith("or set fleet.no_failures_expected = true when the fleet truly has not failed.")
+    # the suggested fix works when applied, and the empty log is still named
+    fixed = fleet(tmp_path, 200, readings_per_unit=1, events_text="unit_id,event_date,event_kind,failure_mode\n",
+                  fleet_keys={"no_failures_expected": True})
+    result = load_export(fixed)
+    assert result.table.n_failures == 0
+    assert result.warnings == ("events.csv has a header but no rows: no failure, replacement or decommission is "
+                               "on record, so every unit is read as running since install.",)
+
+
+def test_failure_codes_not_matched_stop_with_the_kinds_named(tmp_path):
+    events = "unit_id,event_date,event_kind,failure_mode\n" + "".join(
+        f"PU-{i:04d},{_day(i + 500)},replacement,\n" for i in range(0, 200, 50))
+    cfg = fleet(tmp_path, 200, readings_per_unit=1, events_text=events)
+    with pytest.raises(DataError, match=r"Check that fleet.failure_kinds \(\['failure'\]\) names the export's "
+                                        r"failure codes"):
+        load_export(cfg)
+
+
+def test_small_fleet_without_failures_is_not_stopped(tmp_path):
+    # 10 units, about 30 unit-years: too little time to call a missing failure suspicious
+    cfg = fleet(tmp_path, 10, readings_per_unit=1, events_text="unit_id,event_date,event_kind,failure_mode\n")
+    assert load_export(cfg).table.n_failures == 0
+
+
+def test_header_only_readings_warn_that_reading_covariates_are_empty(tmp_path):
+    cfg = fleet(tmp_path, 30, readings_text="unit_id,reading_date,running_hours_per_day,vibration_mm_s\n")
+    result = load_export(cfg)
+    assert result.warnings == ("readings.csv has a header but no rows: the reading covariates "
+                               "(running_hours_per_day, vibration_mm_s) are empty for every unit.",)
+    assert result.table.frame["vibration_mm_s"].isna().all()
+
+
+def test_file_cut_mid_row_is_called_truncated(tmp_path):
+    full = fleet(tmp_path, 30)
+    text = (tmp_path / "readings.csv").read_text()
+    cut = text[: text.rindex(",", 0, len(text) - 1) - 3]  # stops inside the last row's date
+    cfg = fleet(tmp_path, 30, readings_text=cut)
+    result = load_export(cfg)
+    lines = cut.count("\n") + 1
+    assert result.warnings == (f"readings.csv ends in the middle of line {lines} (row has 2 fields, the header has "
+                               "4, no line break after it): the file may be truncated (a cut transfer). Export or "
+                               "copy it again.",)
+    assert result.files[2]["rows_quarantined"] == 1
+    _accounted(result)
+    # a complete last row without a final line break is common and no reason to warn
+    (tmp_path / "readings.csv").write_text(text.rstrip("\n"))
+    assert load_export(full).warnings == ()

@@ -67,7 +67,8 @@ class FleetSection:
     failure_kinds: list[str] = field(default_factory=lambda: ["failure"])
     replacement_kinds: list[str] = field(default_factory=lambda: ["replacement"])
     decommission_kinds: list[str] = field(default_factory=lambda: ["decommission"])
-    max_bad_share: float = 0.05  # stop (exit 65) when more than this share of rows is rejected
+    max_bad_share: float = 0.05  # stop (exit 65) when more than this share of one file's rows is rejected
+    no_failures_expected: bool = False  # true: no failure in 100+ unit-years is not an error
 
 
 @dataclass(frozen=True)

@@ -25,7 +25,7 @@ from wearcast import _atomic
 from wearcast.config import Config
 from wearcast.exceptions import DataError
 from wearcast.io._quarantine import QUARANTINE_COLUMNS, by_reason
-from wearcast.io.export import QUARANTINE_FILE, bad_share_error, load, write_outputs
+from wearcast.io.export import QUARANTINE_FILE, bad_share_error, load, no_failures_error, write_outputs
 from wearcast.lifetable import LifeTable
 
 LIFE_TABLE_FILE = "life_table.csv"
@@ -79,6 +79,11 @@ def load_export(config: Config, *, as_of: dt.date | None = None,
             f"{config.source}: no usable rows left in the export ({loaded.rows_read} read, {len(frame)} rejected, "
             f"{loaded.rows_after_as_of} after as_of). Check input paths, as_of and records_start."
             , quarantine_path=None if path is None else str(path))
+    stop = no_failures_error(loaded, config, path)
+    if stop is not None:
+        if as_of is None:
+            raise stop
+        loaded.warnings.append(str(stop))  # an as-of origin early in the records: the full export was checked
     return ExportResult(table=loaded.table, quarantine=frame, rows_read=loaded.rows_read,
                         rows_kept=loaded.rows_kept, rows_quarantined=len(frame),
                         rows_after_as_of=loaded.rows_after_as_of, quarantine_path=path,

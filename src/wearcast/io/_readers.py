@@ -23,6 +23,7 @@ Rows whose field count differs from the header's carry a reason in
 from __future__ import annotations
 
 import csv
+import dataclasses
 import io
 from dataclasses import dataclass
 from pathlib import Path
@@ -44,6 +45,7 @@ class RawTable:
     frame: pd.DataFrame
     columns: tuple[str, ...]  # the export's own column names, in file order
     delimiter: str = ","  # joins a row's cells into the quarantine's original_row
+    truncated: str = ""  # a sentence when the file ends in the middle of a row (a cut transfer)
 
     @property
     def name(self) -> str:
@@ -112,9 +114,10 @@ def _read_csv(path: Path, delimiter: str | None, encoding: str, compact: bool = 
     else:
         body = text.encode("utf-8")
     del data, text  # one copy of the file in memory at a time
+    ends_open = bool(body.strip(b" \t")) and not body.endswith((b"\n", b"\r"))
     fast = _read_csv_fast(path, body, sep, compact)
     if fast is not None:
-        return fast
+        return _cut_short(fast, ends_open)
     text = body.decode("utf-8")
     del body
     reader = csv.reader(io.StringIO(text, newline=""), delimiter=sep)
@@ -141,7 +144,20 @@ def _read_csv(path: Path, delimiter: str | None, encoding: str, compact: bool = 
         raise DataError(f"{path.name}: the file is empty; expected a header line with column names.")
     _check_header(path, header, header_line)
     frame = pd.DataFrame(records, columns=header, dtype=object)
-    return _finish(path, frame, header, lines, malformed, sep)
+    return _cut_short(_finish(path, frame, header, lines, malformed, sep), ends_open)
+
+
+def _cut_short(raw: RawTable, ends_open: bool) -> RawTable:
+    """Mark a file whose last row has too few fields and no line break after it: a
+    transfer cut in the middle of a row (a complete last row without a final line
+    break is common and fine)."""
+    frame = raw.frame
+    if not ends_open or not len(frame) or str(frame["_malformed"].iloc[-1]) == "":
+        return raw
+    line = int(frame["_line"].iloc[-1])
+    note = (f"{raw.name} ends in the middle of line {line} ({frame['_malformed'].iloc[-1]}, no line break "
+            "after it): the file may be truncated (a cut transfer). Export or copy it again.")
+    return dataclasses.replace(raw, truncated=note)
 
 
 def sniff_delimiter(text: str) -> str:

@@ -70,6 +70,17 @@ def _require(table: RawTable, wanted: dict[str, str] | list[tuple[str, str]]) ->
         )
 
 
+def _require_rows(table: RawTable, what: str, expected: str) -> None:
+    """A file with a header and no rows cannot make a life table: say so by its name."""
+    if not len(table.frame):
+        raise DataError(f"{table.name} has a header but no rows: {what}. Export the file again with its rows "
+                        f"({expected}); check the export's filter or date range.")
+
+
+def _file_warnings(*tables: RawTable | None) -> list[str]:
+    return [t.truncated for t in tables if t is not None and t.truncated]
+
+
 def _rename(table: RawTable, mapping: dict[str, str]) -> pd.DataFrame:
     """Export columns -> wearcast names (only those present)."""
     ren = {theirs: ours for ours, theirs in mapping.items() if theirs in table.columns and theirs != ours}
@@ -162,6 +173,15 @@ def _load_register_log(config: Config, as_of_override) -> Loaded:
     # Every covariate must be in the register or the readings; group columns in the register.
     _require(register, [("fleet.covariates", c) for c in static_cols] + [("fleet.group_by", c) for c in fleet.group_by])
     register_cols = tuple(dict.fromkeys((*static_cols, *fleet.group_by)))
+    _require_rows(register, "the register lists no units", "one row per unit with its install date")
+    warnings = _file_warnings(register, events, readings)
+    if not len(events.frame):
+        warnings.append(f"{events.name} has a header but no rows: no failure, replacement or decommission is on "
+                        "record, so every unit is read as running since install.")
+    if readings is not None and not len(readings.frame):
+        empty = ", ".join(reading_cols) if reading_cols else "none of fleet.covariates"
+        warnings.append(f"{readings.name} has a header but no rows: the reading covariates ({empty}) are empty "
+                        "for every unit.")
 
     q = Quarantine()
     _track(q, register, events, readings)
@@ -230,7 +250,7 @@ def _load_register_log(config: Config, as_of_override) -> Loaded:
                       if t is not None], outcome, q)
     q.seal()
     del register, events, readings, reg_ok, ev_ok, rd_ok  # only the life table is left to make
-    return _finish(config, outcome, q, rows_read, as_of, reading_cols + static_cols, files)
+    return _finish(config, outcome, q, rows_read, as_of, reading_cols + static_cols, files, warnings)
 
 
 # -- life table -------------------------------------------------------------------
@@ -243,6 +263,8 @@ def _load_life_table(config: Config, as_of_override) -> Loaded:
     if inp.age_unit not in _parse.AGE_UNIT_DAYS:
         raise ConfigError(f"{config.source}: input.age_unit {inp.age_unit!r} is not one of "
                           f"{', '.join(_parse.AGE_UNIT_DAYS)}.")
+    _require_rows(table, "the life table holds no lives", "one row per life or interval")
+    warnings = _file_warnings(table)
     q = Quarantine()
     _track(q, table)
     f = _rename(table, {"unit_id": cols.unit_id, "entry": cols.entry, "exit": cols.exit, "failed": cols.failed,
@@ -305,7 +327,7 @@ def _load_life_table(config: Config, as_of_override) -> Loaded:
     q.seal()
     rows_read = len(table.frame)
     del table, f, ok
-    return _finish(config, outcome, q, rows_read, as_of, tuple(fleet.covariates), files)
+    return _finish(config, outcome, q, rows_read, as_of, tuple(fleet.covariates), files, warnings)
 
 
 def _looks_dated(values: pd.Series, decimal: str) -> bool:
@@ -350,7 +372,7 @@ def _account(tables: list[tuple[str, RawTable]], outcome: BuildOutcome, q: Quara
 
 
 def _finish(config: Config, outcome: BuildOutcome, q: Quarantine, rows_read: int, as_of,
-            covariates, files: list[dict]) -> Loaded:
+            covariates, files: list[dict], warnings: list[str]) -> Loaded:
     fleet = config.fleet
     order = list(dict.fromkeys(covariates))
     cov = [c for c in fleet.covariates if c in order]
@@ -366,7 +388,7 @@ def _finish(config: Config, outcome: BuildOutcome, q: Quarantine, rows_read: int
         table = LifeTable.from_frame(frame, cov, fleet.categorical, as_of=as_of, source=config.source,
                                      meta={"renewal": fleet.renewal, "group_by": list(fleet.group_by)})
     return Loaded(table=table, quarantine=q, rows_read=rows_read, rows_kept=rows_kept,
-                  rows_after_as_of=rows_after_as_of, as_of=as_of, files=files)
+                  rows_after_as_of=rows_after_as_of, as_of=as_of, files=files, warnings=warnings)
 
 
 def load(config: Config, as_of: dt.date | None = None) -> Loaded:
@@ -403,6 +425,35 @@ def bad_share_error(loaded: Loaded, frame: pd.DataFrame, max_share: float, path:
         f"(or raise fleet.max_bad_share); {where}.",
         quarantine_path=None if path is None else str(path),
     )
+
+
+#: A fleet with this much time at risk and not one failure is taken as a broken export
+#: (failure codes not matched, an empty or filtered event log) unless the config says
+#: it is expected. 100 unit-years: at an MTBF of 10 years about 10 failures would be
+#: expected, and the chance of none is about e**-10 (Poisson; common practice).
+NO_FAILURE_UNIT_YEARS = 100.0
+
+
+def no_failures_error(loaded: Loaded, config: Config, path: Path | None) -> DataError | None:
+    """A DataError when the life table has no failure in many unit-years (None otherwise)."""
+    table = loaded.table
+    if table is None or table.n_failures or config.fleet.no_failures_expected:
+        return None
+    unit_years = float((table.exit - table.entry).sum()) / 365.25
+    if unit_years < NO_FAILURE_UNIT_YEARS:
+        return None
+    log = next((f for f in loaded.files if f["role"] in ("events", "life_table")), None)
+    name = log["file"] if log else config.source
+    kept = f"{log['rows_kept']} of its {log['rows_read']} rows kept" if log else ""
+    kinds = ", ".join(repr(k) for k in config.fleet.failure_kinds)
+    hint = (f"check that fleet.failure_kinds ([{kinds}]) names the export's failure codes and that the event "
+            "log is the full export" if config.input.shape == "register_log"
+            else "check the failed column and that the file is the full export")
+    return DataError(
+        f"{name}: no failure in {unit_years:,.0f} unit-years at risk over {table.n_units:,} units ({kept}); "
+        f"a life table without failures cannot be modelled. {hint[0].upper() + hint[1:]}, or set "
+        "fleet.no_failures_expected = true when the fleet truly has not failed.",
+        quarantine_path=None if path is None else str(path))
 
 
 def write_outputs(out_dir: Path, quarantine: pd.DataFrame) -> Path:
