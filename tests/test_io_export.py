@@ -163,3 +163,124 @@ def test_file_cut_mid_row_is_called_truncated(tmp_path):
     # a complete last row without a final line break is common and no reason to warn
     (tmp_path / "readings.csv").write_text(text.rstrip("\n"))
     assert load_export(full).warnings == ()
+
+
+# -- 4. dates and encodings as exports write them ------------------------------------------
+
+def _register_events(folder: Path, register_rows: list[str], event_rows: list[str], *, encoding="utf-8",
+                     inp: dict | None = None, fleet_keys: dict | None = None, register_header=None):
+    folder.mkdir(parents=True, exist_ok=True)
+    header = register_header or "unit_id,install_date,rated_kw"
+    (folder / "register.csv").write_bytes(("\n".join([header, *register_rows]) + "\n").encode(encoding))
+    (folder / "events.csv").write_text("\n".join(["unit_id,event_date,event_kind", *event_rows]) + "\n",
+                                       encoding="utf-8")
+    cfg = config_from_dict({"input": {"register": "register.csv", "events": "events.csv", **(inp or {})},
+                            "fleet": {"as_of": dt.date(2024, 12, 1), "max_bad_share": 1.0, **(fleet_keys or {})}})
+    return cfg.__class__(**{**cfg.__dict__, "base_dir": folder})
+
+
+def test_timestamps_with_utc_offsets_read_as_their_calendar_date(tmp_path):
+    cfg = _register_events(tmp_path, ["PU-1,2022-01-10,5", "PU-2,2022-03-01,5", "PU-3,2022-04-01,5"],
+                           ["PU-1,2024-05-04T10:00:00+02:00,failure", "PU-2,2024-05-04T23:30:00Z,failure",
+                            "PU-3,2024-05-04 08:15-0500,failure"])
+    result = load_export(cfg)
+    assert result.rows_quarantined == 0
+    exits = result.table.frame.loc[result.table.frame["failed"], "exit_date"]
+    assert sorted(exits.dt.strftime("%Y-%m-%d")) == ["2024-05-04"] * 3
+
+
+def test_not_a_calendar_date_is_called_so(tmp_path):
+    cfg = _register_events(tmp_path, ["PU-1,2022-01-10,5", "PU-2,2022-03-01,5"],
+                           ["PU-1,2023-02-29,failure", "PU-2,2023-03-01,failure"])
+    q = load_export(cfg).quarantine
+    # 2023 is not a leap year (Gregorian calendar rule: divisible by 4, not by 100 unless by 400)
+    assert q[["line", "column", "value", "reason"]].values.tolist() == [
+        [2, "event_date", "2023-02-29", "not a calendar date: February 2023 has 28 days"]]
+
+
+def test_repeated_header_row_is_named(tmp_path):
+    cfg = _register_events(tmp_path, ["PU-1,2022-01-10,5", "unit_id,install_date,rated_kw", "PU-2,2022-03-01,5"],
+                           ["PU-1,2023-02-28,failure"])
+    result = load_export(cfg)
+    assert result.quarantine[["source_file", "line", "reason"]].values.tolist() == [
+        ["register.csv", 3, "repeated header row (files pasted together); it is not data"]]
+    _accounted(result)
+
+
+def test_nul_byte_never_reaches_the_quarantine_file(tmp_path):
+    cfg = _register_events(tmp_path, ["PU-1,2022-01-10,5", "PU-2\x00,2022-03-01,5"], ["PU-1,2023-02-28,failure"])
+    result = load_export(cfg, quarantine_dir=tmp_path / "out")
+    data = (tmp_path / "out" / "quarantine.csv").read_bytes()
+    assert b"\x00" not in data
+    assert "PU-2\\x00,2022-03-01,5" in data.decode("utf-8")
+    assert result.quarantine[["line", "column", "reason"]].values.tolist() == [
+        [3, "unit_id", "control byte (such as NUL) in the cell: the file was damaged in transfer; export it again"]]
+    assert result.quarantine["value"].tolist() == ["PU-2\\x00"]  # shown, not written raw
+
+
+def test_utf16_export_hint_works_when_applied(tmp_path):
+    rows = ["PU-1,2022-01-10,5", "PU-2,2022-03-01,5"]
+    events = ["PU-1,2023-02-28,failure"]
+    # UTF-16 without a byte-order mark (as some systems write it): the hint must name utf-16, not cp1252
+    raw = _register_events(tmp_path, rows, events, encoding="utf-16-le")
+    with pytest.raises(DataError) as err:
+        load_export(raw)
+    assert str(err.value).endswith('Save the export as UTF-8, or set encoding_by_file = { register = "utf-16" } '
+                                   'under [input] (or encoding = "utf-16" for every file).')
+    # utf-16 without a BOM decodes as little-endian (Python codecs documentation)
+    fixed = _register_events(tmp_path, rows, events, encoding="utf-16-le",
+                             inp={"encoding_by_file": {"register": "utf-16"}})
+    assert load_export(fixed).table.n_units == 2
+    # with a byte-order mark the file is read as UTF-16 without any setting
+    (tmp_path / "register.csv").write_bytes(("unit_id,install_date,rated_kw\n" + "\n".join(rows) + "\n")
+                                            .encode("utf-16"))
+    assert load_export(raw).table.n_units == 2
+
+
+def test_cp1252_hint_works_when_applied(tmp_path):
+    rows = ["PU-1,2022-01-10,5", "PU-2,2022-03-01,5"]
+    header = "unit_id,install_date,rated_kw,Standort\u2013Süd"
+    rows = [r + ",Nordkai" for r in rows]
+    raw = _register_events(tmp_path, rows, ["PU-1,2023-02-28,failure"], encoding="cp1252", register_header=header)
+    with pytest.raises(DataError, match=r'encoding_by_file = \{ register = "cp1252" \}') as err:
+        load_export(raw)
+    assert "line 1" in str(err.value)
+    fixed = _register_events(tmp_path, rows, ["PU-1,2023-02-28,failure"], encoding="cp1252",
+                             register_header=header, inp={"encoding_by_file": {"register": "cp1252"}})
+    assert load_export(fixed).table.n_units == 2
+
+
+def test_date_format_per_file_describes_a_mixed_export(tmp_path):
+    # register day/month, event log month/day: one setting cannot describe both
+    rows = ["PU-1,13/01/2022,5", "PU-2,01/03/2022,5"]
+    events = ["PU-1,02/27/2023,failure", "PU-2,03/01/2023,failure"]
+    mixed = _register_events(tmp_path, rows, events)
+    with pytest.raises(DataError) as err:
+        load_export(mixed)
+    assert str(err.value).endswith('Set the order per file under [input]: date_format_by_file = '
+                                   '{ register = "%d/%m/%Y", events = "%m/%d/%Y" }.')
+    fixed = _register_events(tmp_path, rows, events, inp={"date_format_by_file": {"register": "%d/%m/%Y",
+                                                                                  "events": "%m/%d/%Y"}})
+    result = load_export(fixed)
+    assert result.rows_quarantined == 0
+    assert sorted(result.table.frame.loc[result.table.frame["failed"], "exit_date"].dt.strftime("%Y-%m-%d")) == [
+        "2023-02-27", "2023-03-01"]
+
+
+def test_suggested_date_format_reads_the_other_files_of_a_mixed_export(tmp_path):
+    # register ambiguous day/month; the event log writes ISO timestamps: the suggested
+    # date_format must not reject the event log's rows
+    rows = ["PU-1,03/04/2022,5", "PU-2,05/06/2022,5"]
+    events = ["PU-1,2023-02-27T08:00:00Z,failure", "PU-2,2023-03-01 14:10,failure"]
+    with pytest.raises(DataError, match='for example date_format = "%d/%m/%Y"'):
+        load_export(_register_events(tmp_path, rows, events))
+    result = load_export(_register_events(tmp_path, rows, events, inp={"date_format": "%d/%m/%Y"}))
+    assert result.rows_quarantined == 0 and result.table.n_failures == 2
+
+
+def test_unknown_file_key_in_by_file_settings_is_a_config_error(tmp_path):
+    from wearcast.exceptions import ConfigError
+
+    cfg = _register_events(tmp_path, ["PU-1,2022-01-10,5"], [], inp={"date_format_by_file": {"event": "%d/%m/%Y"}})
+    with pytest.raises(ConfigError, match="input.date_format_by_file has a key 'event'; use the"):
+        load_export(cfg)

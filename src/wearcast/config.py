@@ -34,6 +34,8 @@ class InputSection:
     decimal: str = "."  # "," for decimal-comma exports
     encoding: str = "utf-8"  # a BOM is removed either way
     date_format: str | None = None  # strftime format, e.g. "%d/%m/%Y"; required when dates are ambiguous
+    date_format_by_file: dict[str, str] = field(default_factory=dict)  # register/events/readings/life_table -> format
+    encoding_by_file: dict[str, str] = field(default_factory=dict)  # register/events/readings/life_table -> encoding
     age_unit: str = "days"  # unit of numeric ages in a life_table export: days, hours, weeks, months, years
 
 

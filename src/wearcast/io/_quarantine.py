@@ -11,6 +11,7 @@ row. A row rejected twice keeps its first reason, so row accounting (rows read
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 import numpy as np
@@ -113,8 +114,8 @@ class Quarantine:
             self._parts.append(pd.DataFrame({
                 "source_file": np.full(len(index), source, dtype=object),
                 "line": lines.astype(np.int64),
-                "column": cols, "value": cells, "reason": whys,
-                "original_row": original_rows(table, index),
+                "column": cols, "value": _visible(cells), "reason": whys,
+                "original_row": _visible(original_rows(table, index)),
             }))
         self._chunks = []
         self._tables = {}
@@ -136,6 +137,15 @@ def original_rows(table, index: np.ndarray) -> np.ndarray:
     cells = [table.frame[c].to_numpy()[index] for c in table.columns]
     sep = getattr(table, "delimiter", ",")
     return np.array([join_fields(row, sep) for row in zip(*cells)], dtype=object)
+
+
+_CONTROL = re.compile(r"[\x00-\x08\x0b\x0c\x0e-\x1f\x7f]")
+
+
+def _visible(texts: np.ndarray) -> np.ndarray:
+    """Control bytes (NUL from a damaged transfer, ...) written as ``\\x00`` so the
+    quarantine file stays text that spreadsheets and editors open."""
+    return np.array([_CONTROL.sub(lambda m: f"\\x{ord(m.group()):02x}", str(t)) for t in texts], dtype=object)
 
 
 def _source_of(rows: pd.DataFrame) -> str:

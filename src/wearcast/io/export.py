@@ -28,6 +28,7 @@ from wearcast.io._readers import RawTable, read_export_file
 from wearcast.lifetable import LifeTable
 
 QUARANTINE_FILE = "quarantine.csv"
+_CONTROL_BYTES = r"[\x00-\x08\x0b\x0c\x0e-\x1f\x7f]"
 
 
 @dataclass
@@ -46,6 +47,22 @@ class Loaded:
 
 # -- reading -----------------------------------------------------------------
 
+#: The [input] keys that name a file; also the keys of date_format_by_file / encoding_by_file.
+FILE_KEYS = ("register", "events", "readings", "life_table")
+
+
+def _check_by_file(config: Config) -> None:
+    for key in ("date_format_by_file", "encoding_by_file"):
+        for role in getattr(config.input, key):
+            if role not in FILE_KEYS:
+                raise ConfigError(f"{config.source}: input.{key} has a key {role!r}; use the [input] key that "
+                                  f"names the file: {', '.join(FILE_KEYS)}.")
+
+
+def _date_format(config: Config, role: str) -> str | None:
+    return config.input.date_format_by_file.get(role, config.input.date_format)
+
+
 def _read(config: Config, key: str, required: bool = True) -> RawTable | None:
     inp = config.input
     rel = getattr(inp, key)
@@ -54,8 +71,8 @@ def _read(config: Config, key: str, required: bool = True) -> RawTable | None:
             raise ConfigError(f"{config.source}: input.{key} is not set; shape {inp.shape!r} needs it. "
                               f"Add {key} = \"path/to/file.csv\" under [input].")
         return None
-    return read_export_file(config.path(rel), delimiter=inp.delimiter, encoding=inp.encoding, sheet=inp.sheet,
-                            compact=True)
+    return read_export_file(config.path(rel), delimiter=inp.delimiter, sheet=inp.sheet, compact=True,
+                            encoding=inp.encoding_by_file.get(key, inp.encoding), role=key)
 
 
 def _require(table: RawTable, wanted: dict[str, str] | list[tuple[str, str]]) -> None:
@@ -89,9 +106,22 @@ def _rename(table: RawTable, mapping: dict[str, str]) -> pd.DataFrame:
 
 # -- row checks ----------------------------------------------------------------
 
-def _check_common(frame: pd.DataFrame, q: Quarantine) -> np.ndarray:
-    """Malformed rows and bad ids; returns the mask of rows still good."""
+def _check_common(frame: pd.DataFrame, q: Quarantine, header: tuple[str, ...]) -> np.ndarray:
+    """Malformed rows, repeated header rows and bad ids; returns the mask of rows still good.
+
+    ``header``: the export's own column names (``frame`` holds them renamed, in the same order).
+    """
     q.reject(frame, frame["_malformed"] != "", "", frame["_malformed"], values=pd.Series("", index=frame.index))
+    repeated = np.ones(len(frame), dtype=bool)
+    for i, name in enumerate(header):  # files pasted together keep each part's header line
+        repeated &= (_parse.map_text(frame.iloc[:, i], lambda t: t.astype(str).str.strip()) == name).to_numpy()
+    q.reject(frame, repeated, "", "repeated header row (files pasted together); it is not data",
+             values=pd.Series("", index=frame.index))
+    for i, name in enumerate(header):  # NUL and other control bytes: a transfer or a disk damaged the row
+        damaged = _parse.map_text(frame.iloc[:, i], lambda t: t.astype(str).str.contains(_CONTROL_BYTES, regex=True)
+                                  .map({True: "y", False: ""})) == "y"
+        q.reject(frame, damaged.to_numpy(), str(frame.columns[i]),
+                 "control byte (such as NUL) in the cell: the file was damaged in transfer; export it again")
     reasons = _parse.id_problems(frame["unit_id"])
     q.reject(frame, (reasons != "").to_numpy(), "unit_id", reasons)
     frame["unit_id"] = _parse.map_text(frame["unit_id"], lambda t: t.astype(str).str.strip())
@@ -102,14 +132,20 @@ def _rejected(frame: pd.DataFrame, q: Quarantine) -> np.ndarray:
     return q.rejected(frame)
 
 
-def _dates(frame: pd.DataFrame, col: str, q: Quarantine, config: Config, day_first, *, required: bool) -> None:
+def _dates(frame: pd.DataFrame, col: str, q: Quarantine, config: Config, day_first, *, required: bool,
+           role: str) -> None:
     if col not in frame:
         frame[col] = pd.NaT
         return
-    parsed, bad = _parse.parse_dates(frame[col], date_format=config.input.date_format, day_first=day_first)
-    hint = f"use YYYY-MM-DD or set input.date_format (now {config.input.date_format!r})" \
-        if config.input.date_format else "use YYYY-MM-DD or set input.date_format"
-    q.reject(frame, bad, col, f"unparseable date ({hint})")
+    fmt = _date_format(config, role)
+    parsed, bad = _parse.parse_dates(frame[col], date_format=fmt, day_first=day_first)
+    hint = f"use YYYY-MM-DD or fix the date format for {role} (now {fmt!r})" \
+        if fmt else f"use YYYY-MM-DD or set input.date_format (or date_format_by_file for {role})"
+    if bad.any():
+        reasons = pd.Series(f"unparseable date ({hint})", index=frame.index, dtype=object)
+        cells = frame[col][bad].astype(str)
+        reasons[bad] = [_parse.not_a_date_reason(c, fmt, day_first) or reasons.iloc[0] for c in cells]
+        q.reject(frame, bad, col, reasons)
     if required:
         q.reject(frame, parsed.isna().to_numpy() & ~bad, col, "missing date")
     frame[col] = parsed
@@ -130,11 +166,11 @@ def _kept_rows(frame: pd.DataFrame | None, q: Quarantine) -> pd.DataFrame | None
     return frame[~rejected] if rejected.any() else frame
 
 
-def _day_first(config: Config, frames: list[tuple[pd.DataFrame, str]]) -> bool | None:
-    if config.input.date_format:
-        return None
-    samples = [_parse.DateSample(str(f["_source"].iloc[0]), c, f[c], f["_line"]) for f, c in frames
-               if c in f and len(f)]
+def _day_first(config: Config, frames: list[tuple[pd.DataFrame, str, str]]) -> bool | None:
+    """The day/month order of the files without a date format of their own
+    (``frames``: frame, date column, [input] key of the file)."""
+    samples = [_parse.DateSample(str(f["_source"].iloc[0]), c, f[c], f["_line"], role) for f, c, role in frames
+               if c in f and len(f) and not _date_format(config, role)]
     return _parse.day_first_from_values(samples)
 
 
@@ -192,18 +228,19 @@ def _load_register_log(config: Config, as_of_override) -> Loaded:
     rd = None if readings is None else _rename(readings, {"unit_id": cols.unit_id, "reading_date": cols.reading_date})
     if "failure_mode" not in ev:
         ev["failure_mode"] = ""
-    for f in (reg, ev, rd):
+    for f, t in ((reg, register), (ev, events), (rd, readings)):
         if f is not None:
-            _check_common(f, q)
-    day_first = _day_first(config, [(reg, "install_date"), (reg, "decommission_date"), (ev, "event_date")]
-                           + ([(rd, "reading_date")] if rd is not None else []))
-    _dates(reg, "install_date", q, config, day_first, required=True)
-    _dates(reg, "decommission_date", q, config, day_first, required=False)
-    _dates(ev, "event_date", q, config, day_first, required=True)
+            _check_common(f, q, t.columns)
+    day_first = _day_first(config, [(reg, "install_date", "register"), (reg, "decommission_date", "register"),
+                                    (ev, "event_date", "events")]
+                           + ([(rd, "reading_date", "readings")] if rd is not None else []))
+    _dates(reg, "install_date", q, config, day_first, required=True, role="register")
+    _dates(reg, "decommission_date", q, config, day_first, required=False, role="register")
+    _dates(ev, "event_date", q, config, day_first, required=True, role="events")
     numeric_static = [c for c in static_cols if c not in fleet.categorical]
     _numbers(reg, numeric_static, q, config, "non-numeric covariate")
     if rd is not None:
-        _dates(rd, "reading_date", q, config, day_first, required=True)
+        _dates(rd, "reading_date", q, config, day_first, required=True, role="readings")
         _numbers(rd, reading_cols, q, config, "non-numeric covariate")
     vocab = {k.strip().lower(): "failure" for k in fleet.failure_kinds}
     vocab |= {k.strip().lower(): "replacement" for k in fleet.replacement_kinds}
@@ -269,7 +306,7 @@ def _load_life_table(config: Config, as_of_override) -> Loaded:
     _track(q, table)
     f = _rename(table, {"unit_id": cols.unit_id, "entry": cols.entry, "exit": cols.exit, "failed": cols.failed,
                         "mode": cols.failure_mode, "install_date": cols.install_date, "life": cols.life})
-    _check_common(f, q)
+    _check_common(f, q, table.columns)
     for c in f.columns:  # life tables are walked row by row below: plain text columns
         if isinstance(f[c].dtype, pd.CategoricalDtype):
             f[c] = f[c].astype(object)
@@ -277,9 +314,10 @@ def _load_life_table(config: Config, as_of_override) -> Loaded:
     if "entry" not in f:  # no entry column: every life is observed from age 0
         f["entry"] = f["install_date"] if dated else "0"
     if dated:
-        day_first = _day_first(config, [(f, "install_date"), (f, "entry"), (f, "exit")])
+        day_first = _day_first(config, [(f, "install_date", "life_table"), (f, "entry", "life_table"),
+                                        (f, "exit", "life_table")])
         for c in ("install_date", "entry", "exit"):
-            _dates(f, c, q, config, day_first, required=True)
+            _dates(f, c, q, config, day_first, required=True, role="life_table")
         f["entry_date"], f["exit_date"] = f["entry"], f["exit"]
         f["entry_age"] = (f["entry"] - f["install_date"]) / pd.Timedelta(days=1)
         f["exit_age"] = (f["exit"] - f["install_date"]) / pd.Timedelta(days=1)
@@ -394,6 +432,7 @@ def _finish(config: Config, outcome: BuildOutcome, q: Quarantine, rows_read: int
 def load(config: Config, as_of: dt.date | None = None) -> Loaded:
     """Read, check and build; raises only for whole-file problems (see module doc)."""
     shape = config.input.shape
+    _check_by_file(config)
     if shape == "register_log":
         return _load_register_log(config, as_of)
     if shape == "life_table":
