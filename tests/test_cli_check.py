@@ -84,8 +84,8 @@ def test_unknown_config_key_exits_78(tmp_path):
     assert result.exit_code == 78
     assert result.stderr == (
         f"error: {tmp_path / 'fleet.toml'}: unknown key 'max_bad' in [fleet]; known keys: as_of, categorical, "
-        "covariates, decommission_kinds, failure_kinds, group_by, max_bad_share, no_failures_expected, records_start, "
-        "renewal, "
+        "covariates, decommission_kinds, failure_kinds, group_by, max_bad_share, no_failures_expected, ranges, "
+        "records_start, renewal, "
         "replacement_kinds.\n")
 
 

@@ -284,3 +284,66 @@ def test_unknown_file_key_in_by_file_settings_is_a_config_error(tmp_path):
     cfg = _register_events(tmp_path, ["PU-1,2022-01-10,5"], [], inp={"date_format_by_file": {"event": "%d/%m/%Y"}})
     with pytest.raises(ConfigError, match="input.date_format_by_file has a key 'event'; use the"):
         load_export(cfg)
+
+
+# -- 2. plausible ranges for readings and covariates -----------------------------------------
+
+def test_implausible_readings_and_register_values_are_quarantined_with_the_range(tmp_path):
+    rows = ["unit_id,reading_date,running_hours_per_day,vibration_mm_s",
+            "PU-0001,2016-03-01,37.5,2.1",      # more hours than a day has
+            "PU-0002,2016-03-01,12,-4.2",       # a vibration level cannot be negative
+            "PU-0003,2016-03-01,1e308,2.0",     # an overflowed cell
+            "PU-0004,2016-03-01,24,0"]          # the edges are plausible
+    register = ["unit_id,install_date,rated_kw,site"] + [
+        f"PU-{i:04d},{_day(i)},{'-7.5' if i == 5 else '5.5'},Northpier" for i in range(8)]
+    cfg = fleet(tmp_path, 8, readings_text="\n".join(rows) + "\n", register_text="\n".join(register) + "\n",
+                fleet_keys={"max_bad_share": 1.0})
+    result = load_export(cfg)
+    q = result.quarantine
+    hint = "fix the value, or declare the range under [fleet.ranges] as {c} = [low, high]"
+    assert q[["source_file", "line", "column", "reason"]].values.tolist() == [
+        ["readings.csv", 2, "running_hours_per_day", "outside the plausible range of running_hours_per_day: "
+         "0 to 24 (hours in a day); " + hint.format(c="running_hours_per_day")],
+        ["readings.csv", 3, "vibration_mm_s", "outside the plausible range of vibration_mm_s: 0 to 1e12 "
+         "(cannot be negative); " + hint.format(c="vibration_mm_s")],
+        ["readings.csv", 4, "running_hours_per_day", "outside the plausible range of running_hours_per_day: "
+         "0 to 24 (hours in a day); " + hint.format(c="running_hours_per_day")],
+        ["register.csv", 7, "rated_kw", "outside the plausible range of rated_kw: 0 to 1e12 (cannot be negative); "
+         + hint.format(c="rated_kw")],
+    ]
+    assert q["value"].tolist() == ["37.5", "-4.2", "1e308", "-7.5"]
+    table = result.table.frame
+    assert table["running_hours_per_day"].max() <= 24 and table["vibration_mm_s"].min() >= 0
+    _accounted(result)
+
+
+def test_declared_range_overrides_the_default_and_the_fix_works(tmp_path):
+    rows = ["unit_id,reading_date,running_hours_per_day,vibration_mm_s",
+            "PU-0001,2016-03-01,12,-4.2", "PU-0002,2016-03-01,12,60"]
+    cfg = fleet(tmp_path, 4, readings_text="\n".join(rows) + "\n",
+                fleet_keys={"max_bad_share": 1.0, "ranges": {"vibration_mm_s": [float("-inf"), 45]}})
+    q = load_export(cfg).quarantine
+    assert q[["line", "reason"]].values.tolist() == [
+        [3, "outside the plausible range of vibration_mm_s: -inf to 45 (fleet.ranges.vibration_mm_s); fix the "
+            "value, or declare the range under [fleet.ranges] as vibration_mm_s = [low, high]"]]
+
+
+def test_range_for_an_unknown_column_is_a_config_error(tmp_path):
+    from wearcast.exceptions import ConfigError
+
+    cfg = fleet(tmp_path, 4, fleet_keys={"ranges": {"vibraton_mm_s": [0, 45]}})
+    with pytest.raises(ConfigError, match="fleet.ranges names 'vibraton_mm_s', which is not a numeric covariate"):
+        load_export(cfg)
+    cfg = fleet(tmp_path, 4, fleet_keys={"ranges": {"vibration_mm_s": [45, 0]}})
+    with pytest.raises(ConfigError, match=r"must be \[low, high\] with low <= high"):
+        load_export(cfg)
+
+
+def test_range_rules_from_column_names():
+    from wearcast.io._ranges import MAGNITUDE, plausible_range
+
+    # hours in a day and signs of physical quantities: common practice
+    assert (plausible_range("running_hours_per_day", {}).low, plausible_range("hrs_day", {}).high) == (0, 24)
+    assert plausible_range("rated_kw", {}).low == 0 and plausible_range("motor_current_a", {}).low == 0
+    assert plausible_range("bearing_temp_c", {}).low == -MAGNITUDE  # temperatures may be below zero
+    assert plausible_range("suction_bar", {}).low == -MAGNITUDE  # gauge pressure may be below zero

@@ -70,6 +70,7 @@ class FleetSection:
     replacement_kinds: list[str] = field(default_factory=lambda: ["replacement"])
     decommission_kinds: list[str] = field(default_factory=lambda: ["decommission"])
     max_bad_share: float = 0.05  # stop (exit 65) when more than this share of one file's rows is rejected
+    ranges: dict[str, list[float]] = field(default_factory=dict)  # covariate -> [low, high]; outside: quarantined
     no_failures_expected: bool = False  # true: no failure in 100+ unit-years is not an error
 
 

@@ -21,7 +21,7 @@ import pandas as pd
 
 from wearcast.config import Config
 from wearcast.exceptions import ConfigError, DataError
-from wearcast.io import _parse
+from wearcast.io import _parse, _ranges
 from wearcast.io._build import BuildOutcome, BuildSettings, build_from_intervals, build_register_log
 from wearcast.io._quarantine import Quarantine, by_reason, write_quarantine
 from wearcast.io._readers import RawTable, read_export_file
@@ -151,10 +151,18 @@ def _dates(frame: pd.DataFrame, col: str, q: Quarantine, config: Config, day_fir
     frame[col] = parsed
 
 
-def _numbers(frame: pd.DataFrame, cols, q: Quarantine, config: Config, reason: str) -> None:
+def _numbers(frame: pd.DataFrame, cols, q: Quarantine, config: Config, reason: str, *,
+             plausible: bool = False) -> None:
+    """Parse ``cols`` as numbers; with ``plausible``, also quarantine values outside each
+    column's plausible range (:mod:`wearcast.io._ranges`)."""
     for col in cols:
         values, bad = _parse.parse_numbers(frame[col], config.input.decimal)
         q.reject(frame, bad, col, reason)
+        if plausible:
+            span = _ranges.plausible_range(col, config.fleet.ranges)
+            far = _ranges.outside(values, span) & ~bad
+            q.reject(frame, far, col, f"outside the plausible range of {col}: {span.describe()}; fix the value, "
+                                      f"or declare the range under [fleet.ranges] as {col} = [low, high]")
         frame[col] = values
 
 
@@ -238,10 +246,10 @@ def _load_register_log(config: Config, as_of_override) -> Loaded:
     _dates(reg, "decommission_date", q, config, day_first, required=False, role="register")
     _dates(ev, "event_date", q, config, day_first, required=True, role="events")
     numeric_static = [c for c in static_cols if c not in fleet.categorical]
-    _numbers(reg, numeric_static, q, config, "non-numeric covariate")
+    _numbers(reg, numeric_static, q, config, "non-numeric covariate", plausible=True)
     if rd is not None:
         _dates(rd, "reading_date", q, config, day_first, required=True, role="readings")
-        _numbers(rd, reading_cols, q, config, "non-numeric covariate")
+        _numbers(rd, reading_cols, q, config, "non-numeric covariate", plausible=True)
     vocab = {k.strip().lower(): "failure" for k in fleet.failure_kinds}
     vocab |= {k.strip().lower(): "replacement" for k in fleet.replacement_kinds}
     vocab |= {k.strip().lower(): "decommission" for k in fleet.decommission_kinds}
@@ -343,7 +351,8 @@ def _load_life_table(config: Config, as_of_override) -> Loaded:
         f["life"] = f.groupby("unit_id")["install_date"].rank(method="dense").fillna(1)
     else:
         f["life"] = 1
-    _numbers(f, [c for c in fleet.covariates if c not in fleet.categorical], q, config, "non-numeric covariate")
+    _numbers(f, [c for c in fleet.covariates if c not in fleet.categorical], q, config, "non-numeric covariate",
+             plausible=True)
     ok = f[~_rejected(f, q)].copy()
     ok["life"] = ok["life"].astype(np.int64)
     if as_of_override is not None:
@@ -433,6 +442,8 @@ def load(config: Config, as_of: dt.date | None = None) -> Loaded:
     """Read, check and build; raises only for whole-file problems (see module doc)."""
     shape = config.input.shape
     _check_by_file(config)
+    _ranges.check_ranges(config.fleet.ranges, [c for c in config.fleet.covariates if c not in config.fleet.categorical],
+                         config.source)
     if shape == "register_log":
         return _load_register_log(config, as_of)
     if shape == "life_table":
