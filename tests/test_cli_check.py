@@ -172,3 +172,22 @@ def test_costs_need_both_keys_and_too_few_failures_give_no_age(tmp_path):
     assert again.exit_code == 0, again.stderr
     assert not (tmp_path / "out" / "replacement_ages.csv").exists()
     assert not (tmp_path / "out" / "run_summary.json").exists()
+
+
+def test_failed_rerun_leaves_no_earlier_life_table_beside_the_new_quarantine(tmp_path):
+    good = run(tmp_path, inputs("register_ambiguous.csv", "events_ambiguous.csv", 'date_format = "%d/%m/%Y"\n')
+               + "[fleet]\nas_of = 2022-06-01\n")
+    assert good.exit_code == 0, good.stderr
+    out = tmp_path / "out"
+    assert (out / "life_table.csv").exists() and (out / "check_summary.json").exists()
+    bad = run(tmp_path, inputs("register_mangled.csv", "events_mangled.csv"))
+    assert bad.exit_code == 65
+    assert sorted(p.name for p in out.iterdir()) == ["quarantine.csv"]
+    assert set(pd.read_csv(out / "quarantine.csv")["source_file"]) == {"register_mangled.csv", "events_mangled.csv"}
+    # a stop before any row is read (missing column) leaves no earlier quarantine either
+    again = run(tmp_path, inputs("register_ambiguous.csv", "events_ambiguous.csv", 'date_format = "%d/%m/%Y"\n')
+                + "[fleet]\nas_of = 2022-06-01\n")
+    assert again.exit_code == 0
+    missing = run(tmp_path, inputs("register_no_install.csv", "events_ok.csv"))
+    assert missing.exit_code == 65
+    assert list(out.iterdir()) == []
