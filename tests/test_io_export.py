@@ -347,3 +347,26 @@ def test_range_rules_from_column_names():
     assert plausible_range("rated_kw", {}).low == 0 and plausible_range("motor_current_a", {}).low == 0
     assert plausible_range("bearing_temp_c", {}).low == -MAGNITUDE  # temperatures may be below zero
     assert plausible_range("suction_bar", {}).low == -MAGNITUDE  # gauge pressure may be below zero
+
+
+# -- 5. outputs are what the user expects on disk ------------------------------------------
+
+def test_quarantine_shows_the_exports_own_column_names_and_cells(tmp_path):
+    (tmp_path / "assets.csv").write_text(
+        "asset_no;commissioned;rated_kw\nPU-1;14/02/2019;5,5\nPU-2;15/03/2019;-7,5\n", encoding="utf-8")
+    (tmp_path / "work_orders.csv").write_text(
+        "asset_no;wo_date;wo_type\nPU-1;01/01/2019;BREAKDOWN\nPU-1;20/06/2020;BREAKDOWN\n", encoding="utf-8")
+    cfg = config_from_dict({
+        "input": {"register": "assets.csv", "events": "work_orders.csv", "decimal": ","},
+        "columns": {"unit_id": "asset_no", "install_date": "commissioned", "event_date": "wo_date",
+                    "event_kind": "wo_type"},
+        "fleet": {"as_of": dt.date(2021, 1, 1), "covariates": ["rated_kw"], "failure_kinds": ["BREAKDOWN"],
+                  "max_bad_share": 1.0}})
+    cfg = cfg.__class__(**{**cfg.__dict__, "base_dir": tmp_path})
+    q = load_export(cfg).quarantine
+    assert q[["source_file", "line", "column", "value"]].values.tolist() == [
+        ["assets.csv", 3, "rated_kw", "-7,5"],          # as written, decimal comma and all
+        ["work_orders.csv", 2, "wo_date", "01/01/2019"],  # dated before install: the cell, not 2019-01-01
+    ]
+    assert q["reason"].tolist()[1] == "dated before install"
+    assert q["original_row"].tolist() == ["PU-2;15/03/2019;-7,5", "PU-1;01/01/2019;BREAKDOWN"]

@@ -98,9 +98,10 @@ def _file_warnings(*tables: RawTable | None) -> list[str]:
     return [t.truncated for t in tables if t is not None and t.truncated]
 
 
-def _rename(table: RawTable, mapping: dict[str, str]) -> pd.DataFrame:
-    """Export columns -> wearcast names (only those present)."""
+def _rename(table: RawTable, mapping: dict[str, str], q: Quarantine) -> pd.DataFrame:
+    """Export columns -> wearcast names (only those present); ``q`` learns the export's names."""
     ren = {theirs: ours for ours, theirs in mapping.items() if theirs in table.columns and theirs != ours}
+    q.name_columns(table.name, {ours: theirs for theirs, ours in ren.items()})
     return table.frame.rename(columns=ren)
 
 
@@ -230,10 +231,11 @@ def _load_register_log(config: Config, as_of_override) -> Loaded:
     q = Quarantine()
     _track(q, register, events, readings)
     reg = _rename(register, {"unit_id": cols.unit_id, "install_date": cols.install_date,
-                             "decommission_date": cols.decommission_date})
+                             "decommission_date": cols.decommission_date}, q)
     ev = _rename(events, {"unit_id": cols.unit_id, "event_date": cols.event_date,
-                          "event_kind": cols.event_kind, "failure_mode": cols.failure_mode})
-    rd = None if readings is None else _rename(readings, {"unit_id": cols.unit_id, "reading_date": cols.reading_date})
+                          "event_kind": cols.event_kind, "failure_mode": cols.failure_mode}, q)
+    rd = None if readings is None else _rename(readings, {"unit_id": cols.unit_id, "reading_date": cols.reading_date},
+                                               q)
     if "failure_mode" not in ev:
         ev["failure_mode"] = ""
     for f, t in ((reg, register), (ev, events), (rd, readings)):
@@ -313,7 +315,7 @@ def _load_life_table(config: Config, as_of_override) -> Loaded:
     q = Quarantine()
     _track(q, table)
     f = _rename(table, {"unit_id": cols.unit_id, "entry": cols.entry, "exit": cols.exit, "failed": cols.failed,
-                        "mode": cols.failure_mode, "install_date": cols.install_date, "life": cols.life})
+                        "mode": cols.failure_mode, "install_date": cols.install_date, "life": cols.life}, q)
     _check_common(f, q, table.columns)
     for c in f.columns:  # life tables are walked row by row below: plain text columns
         if isinstance(f[c].dtype, pd.CategoricalDtype):
