@@ -54,6 +54,7 @@ class ColumnsSection:
     exit: str = "exit"
     failed: str = "failed"
     life: str = "life"  # life_table shape only, optional: life number within a unit (1, 2, ...)
+    retired: str = "retired"  # life_table shape only, optional: 1/true marks a retired or decommissioned unit
 
 
 @dataclass(frozen=True)

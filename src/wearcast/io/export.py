@@ -315,7 +315,8 @@ def _load_life_table(config: Config, as_of_override) -> Loaded:
     q = Quarantine()
     _track(q, table)
     f = _rename(table, {"unit_id": cols.unit_id, "entry": cols.entry, "exit": cols.exit, "failed": cols.failed,
-                        "mode": cols.failure_mode, "install_date": cols.install_date, "life": cols.life}, q)
+                        "mode": cols.failure_mode, "install_date": cols.install_date, "life": cols.life,
+                        "retired": cols.retired}, q)
     _check_common(f, q, table.columns)
     for c in f.columns:  # life tables are walked row by row below: plain text columns
         if isinstance(f[c].dtype, pd.CategoricalDtype):
@@ -343,6 +344,14 @@ def _load_life_table(config: Config, as_of_override) -> Loaded:
     failed, bad = _parse.parse_flags(f["failed"])
     q.reject(f, bad, "failed", "failed flag is not 0/1/true/false")
     f["failed"] = failed
+    marked = "retired" in f
+    if marked:  # blank = still in the fleet; 1/true = retired or decommissioned
+        text = f["retired"].astype(str).str.strip()
+        retired, bad = _parse.parse_flags(text.where(text != "", "0"))
+        q.reject(f, bad, "retired", "retired flag is not 0/1/true/false (blank: not retired)")
+        f["retired"] = retired
+    else:
+        f["retired"] = False
     f["mode"] = f["mode"].astype(str).str.strip() if "mode" in f else ""
     if "life" in f:
         life, bad = _parse.parse_numbers(f["life"])
@@ -366,17 +375,41 @@ def _load_life_table(config: Config, as_of_override) -> Loaded:
     else:
         as_of = None
     settings = BuildSettings(renewal=fleet.renewal, as_of=as_of, backtest=as_of_override is not None)
-    keep = ["unit_id", "life", "entry_age", "exit_age", "failed", "mode", "_source", "_line",
+    keep = ["unit_id", "life", "entry_age", "exit_age", "failed", "mode", "retired", "_source", "_line",
             *dict.fromkeys((*fleet.covariates, *fleet.group_by))]
     if dated:
         keep += ["install_date", "entry_date", "exit_date"]
     outcome = build_from_intervals(ok[keep], settings, dated=dated)
     _merge(outcome, q)
+    if not dated and not marked:
+        warnings += _all_in_service(outcome.frame, table.name, config)
     files = _account([("life_table", table)], outcome, q)
     q.seal()
     rows_read = len(table.frame)
     del table, f, ok
     return _finish(config, outcome, q, rows_read, as_of, tuple(fleet.covariates), files, warnings)
+
+
+#: A life table in ages with at least this many units and no retired unit among those
+#: not ended by a failure is worth a word: retirements are common in a fleet that size.
+LARGE_TABLE_UNITS = 200
+
+
+def _all_in_service(frame: pd.DataFrame, name: str, config: Config) -> list[str]:
+    """A warning when every unit of a large life table in ages that did not end in a failure
+    reads as in service (nothing in the file can say a unit was retired)."""
+    if not len(frame):
+        return []
+    last_failed = frame.groupby("unit_id", sort=False)["failed"].last() if "failed" in frame else None
+    units = int(frame["unit_id"].nunique())
+    running = int(frame.loc[frame["in_service"], "unit_id"].nunique())
+    not_failed = units - int(last_failed.sum()) if last_failed is not None else units
+    if units < LARGE_TABLE_UNITS or running < not_failed:
+        return []
+    return [f"every one of the {running:,} units of {name} whose last life did not end in a failure reads as in "
+            f"service: ages alone cannot say a unit was retired. If some were retired or decommissioned, add a "
+            f"column {config.columns.retired!r} (1 for those units; set columns.retired to use another name) so "
+            "they are left out of the ranking and the fleet forecast."]
 
 
 def _looks_dated(values: pd.Series, decimal: str) -> bool:
