@@ -114,7 +114,7 @@ def test_header_only_event_log_stops_when_a_large_fleet_shows_no_failure(tmp_pat
         load_export(cfg)
     message = str(err.value)
     assert message.startswith("events.csv: no failure in ")
-    assert "unit-years at risk over 200 units (0 of its 0 rows kept)" in message
+    assert "unit-years at risk over 200 units (the file has a header but no rows)" in message
     assert message.endswith("or set fleet.no_failures_expected = true when the fleet truly has not failed.")
     # the suggested fix works when applied, and the empty log is still named
     fixed = fleet(tmp_path, 200, readings_per_unit=1, events_text="unit_id,event_date,event_kind,failure_mode\n",

@@ -178,8 +178,8 @@ def _kept_rows(frame: pd.DataFrame | None, q: Quarantine) -> pd.DataFrame | None
 def _day_first(config: Config, frames: list[tuple[pd.DataFrame, str, str]]) -> bool | None:
     """The day/month order of the files without a date format of their own
     (``frames``: frame, date column, [input] key of the file)."""
-    samples = [_parse.DateSample(str(f["_source"].iloc[0]), c, f[c], f["_line"], role) for f, c, role in frames
-               if c in f and len(f) and not _date_format(config, role)]
+    samples = [_parse.DateSample(str(f["_source"].iloc[0]), getattr(config.columns, c, c), f[c], f["_line"], role)
+               for f, c, role in frames if c in f and len(f) and not _date_format(config, role)]
     return _parse.day_first_from_values(samples)
 
 
@@ -529,7 +529,8 @@ def no_failures_error(loaded: Loaded, config: Config, path: Path | None) -> Data
         return None
     log = next((f for f in loaded.files if f["role"] in ("events", "life_table")), None)
     name = log["file"] if log else config.source
-    kept = f"{log['rows_kept']} of its {log['rows_read']} rows kept" if log else ""
+    kept = ("the file has a header but no rows" if not log["rows_read"]
+            else f"{log['rows_kept']} of its {log['rows_read']} rows kept") if log else "no event log"
     kinds = ", ".join(repr(k) for k in config.fleet.failure_kinds)
     hint = (f"check that fleet.failure_kinds ([{kinds}]) names the export's failure codes and that the event "
             "log is the full export" if config.input.shape == "register_log"
