@@ -191,3 +191,20 @@ def test_failed_rerun_leaves_no_earlier_life_table_beside_the_new_quarantine(tmp
     missing = run(tmp_path, inputs("register_no_install.csv", "events_ok.csv"))
     assert missing.exit_code == 65
     assert list(out.iterdir()) == []
+
+
+def test_warnings_are_printed_and_kept_in_the_summary(tmp_path):
+    import json
+
+    (tmp_path / "register.csv").write_text("unit_id,install_date\nP-1,2021-01-04\nP-2,2021-02-01\n")
+    (tmp_path / "events.csv").write_text("unit_id,event_date,event_kind\nP-1,2022-03-01,failure\n")
+    (tmp_path / "readings.csv").write_text("unit_id,reading_date,vibration_mm_s\n")
+    result = run(tmp_path, '[input]\nregister = "register.csv"\nevents = "events.csv"\nreadings = "readings.csv"\n'
+                           '[fleet]\nas_of = 2022-06-01\ncovariates = ["vibration_mm_s"]\n')
+    assert result.exit_code == 0, result.stderr
+    warning = ("readings.csv has a header but no rows: the reading covariates (vibration_mm_s) are empty for every "
+               "unit.")
+    assert f"warning: {warning}" in result.stdout.splitlines()
+    assert "  readings.csv (readings): 0 read = 0 kept + 0 quarantined" in result.stdout.splitlines()
+    summary = json.loads((tmp_path / "out" / "check_summary.json").read_text())
+    assert summary["warnings"] == [warning]

@@ -370,3 +370,13 @@ def test_quarantine_shows_the_exports_own_column_names_and_cells(tmp_path):
     ]
     assert q["reason"].tolist()[1] == "dated before install"
     assert q["original_row"].tolist() == ["PU-2;15/03/2019;-7,5", "PU-1;01/01/2019;BREAKDOWN"]
+
+
+def test_event_log_that_cannot_be_read_stops_beside_many_readings(tmp_path):
+    # written with commas under a semicolon header: every row is one field short of four
+    events = "unit_id;event_date;event_kind;failure_mode\n" + "".join(
+        f"PU-{i:04d},{_day(i + 400)},failure,bearing\n" for i in range(0, 60, 3))
+    cfg = fleet(tmp_path, 60, readings_per_unit=30, events_text=events)
+    with pytest.raises(DataError, match=r"^events.csv: 20 of 20 rows \(100.0%\) were rejected.*row has 1 fields, "
+                                        r"the header has 4"):
+        load_export(cfg)

@@ -115,6 +115,8 @@ def _check_common(frame: pd.DataFrame, q: Quarantine, header: tuple[str, ...]) -
     q.reject(frame, frame["_malformed"] != "", "", frame["_malformed"], values=pd.Series("", index=frame.index))
     repeated = np.ones(len(frame), dtype=bool)
     for i, name in enumerate(header):  # files pasted together keep each part's header line
+        if not repeated.any():
+            break
         repeated &= (_parse.map_text(frame.iloc[:, i], lambda t: t.astype(str).str.strip()) == name).to_numpy()
     q.reject(frame, repeated, "", "repeated header row (files pasted together); it is not data",
              values=pd.Series("", index=frame.index))
