@@ -380,3 +380,14 @@ def test_event_log_that_cannot_be_read_stops_beside_many_readings(tmp_path):
     with pytest.raises(DataError, match=r"^events.csv: 20 of 20 rows \(100.0%\) were rejected.*row has 1 fields, "
                                         r"the header has 4"):
         load_export(cfg)
+
+
+def test_infinity_written_as_a_value_is_called_not_finite(tmp_path):
+    rows = ["unit_id,reading_date,running_hours_per_day,vibration_mm_s",
+            "PU-0001,2016-03-01,12,inf", "PU-0002,2016-03-01,NaN,2.0", "PU-0003,2016-03-01,12,n/a"]
+    cfg = fleet(tmp_path, 4, readings_text="\n".join(rows) + "\n", fleet_keys={"max_bad_share": 1.0})
+    q = load_export(cfg).quarantine
+    assert q[["line", "value", "reason"]].values.tolist() == [
+        [2, "inf", "not a finite number (infinity or NaN written as a value)"],
+        [3, "NaN", "not a finite number (infinity or NaN written as a value)"],
+        [4, "n/a", "non-numeric covariate"]]

@@ -160,6 +160,11 @@ def _numbers(frame: pd.DataFrame, cols, q: Quarantine, config: Config, reason: s
     column's plausible range (:mod:`wearcast.io._ranges`)."""
     for col in cols:
         values, bad = _parse.parse_numbers(frame[col], config.input.decimal)
+        if bad.any():  # inf / NaN written as a value is a number, but not one a reading can be
+            words = _parse.map_text(frame[col], lambda t: t.astype(str).str.strip().str.lower()
+                                    .str.lstrip("+-").isin(("inf", "infinity", "nan")).map({True: "y", False: ""}))
+            endless = bad & (words == "y").to_numpy()
+            q.reject(frame, endless, col, "not a finite number (infinity or NaN written as a value)")
         q.reject(frame, bad, col, reason)
         if plausible:
             span = _ranges.plausible_range(col, config.fleet.ranges)
