@@ -391,3 +391,26 @@ def test_infinity_written_as_a_value_is_called_not_finite(tmp_path):
         [2, "inf", "not a finite number (infinity or NaN written as a value)"],
         [3, "NaN", "not a finite number (infinity or NaN written as a value)"],
         [4, "n/a", "non-numeric covariate"]]
+
+
+def test_cut_inside_the_last_cell_is_called_truncated(tmp_path):
+    # the event date is the last column here: a cut inside it leaves every field but a broken date
+    text = "unit_id,event_kind,failure_mode,event_date\n" + "".join(
+        f"PU-{i:04d},failure,bearing,{_day(i + 400)}\n" for i in range(0, 30, 3)).rstrip("\n")
+    cfg = fleet(tmp_path, 30, events_text=text[:-3], fleet_keys={"max_bad_share": 1.0})  # '2017-03-' is left
+    result = load_export(cfg)
+    assert result.quarantine["value"].tolist() == [text[-10:-3]]
+    assert result.warnings == (
+        "events.csv ends without a line break and its last row (line 11) was rejected: the file may be "
+        "truncated (a cut transfer). Export or copy it again.",)
+    # the same bad date on a row that ends with a line break is an ordinary bad row
+    again = fleet(tmp_path, 30, events_text=text[:-3] + "\n", fleet_keys={"max_bad_share": 1.0})
+    assert load_export(again).warnings == ()
+
+
+def test_covariate_with_no_value_anywhere_is_named(tmp_path):
+    rows = ["unit_id,reading_date,running_hours_per_day,vibration_mm_s"] + [
+        f"PU-{i:04d},2016-06-01,12," for i in range(6)]
+    result = load_export(fleet(tmp_path, 6, readings_text="\n".join(rows) + "\n"))
+    assert result.warnings == ("covariate vibration_mm_s is empty for every unit: no kept row of the export holds "
+                               "a value for it. Check that column in the export, or remove it from fleet.covariates.",)

@@ -46,6 +46,7 @@ class RawTable:
     columns: tuple[str, ...]  # the export's own column names, in file order
     delimiter: str = ","  # joins a row's cells into the quarantine's original_row
     truncated: str = ""  # a sentence when the file ends in the middle of a row (a cut transfer)
+    ends_open: bool = False  # no line break after the last row (CSV)
 
     @property
     def name(self) -> str:
@@ -169,11 +170,11 @@ def _cut_short(raw: RawTable, ends_open: bool) -> RawTable:
     break is common and fine)."""
     frame = raw.frame
     if not ends_open or not len(frame) or str(frame["_malformed"].iloc[-1]) == "":
-        return raw
+        return dataclasses.replace(raw, ends_open=ends_open)
     line = int(frame["_line"].iloc[-1])
     note = (f"{raw.name} ends in the middle of line {line} ({frame['_malformed'].iloc[-1]}, no line break "
             "after it): the file may be truncated (a cut transfer). Export or copy it again.")
-    return dataclasses.replace(raw, truncated=note)
+    return dataclasses.replace(raw, truncated=note, ends_open=True)
 
 
 def _encoding_advice(data: bytes, role: str | None) -> str:

@@ -98,6 +98,19 @@ def _file_warnings(*tables: RawTable | None) -> list[str]:
     return [t.truncated for t in tables if t is not None and t.truncated]
 
 
+def _cut_last_rows(q: Quarantine, *tables: RawTable | None) -> list[str]:
+    """A file with no line break after its last row whose last row was rejected: a transfer
+    cut inside the last cell leaves a row with every field but a broken value."""
+    out = []
+    for t in tables:
+        if t is None or not t.ends_open or t.truncated or not len(t.frame) or not q.taken(t.name)[-1]:
+            continue
+        line = int(t.frame["_line"].iloc[-1])
+        out.append(f"{t.name} ends without a line break and its last row (line {line}) was rejected: the file may "
+                   "be truncated (a cut transfer). Export or copy it again.")
+    return out
+
+
 def _rename(table: RawTable, mapping: dict[str, str], q: Quarantine) -> pd.DataFrame:
     """Export columns -> wearcast names (only those present); ``q`` learns the export's names."""
     ren = {theirs: ours for ours, theirs in mapping.items() if theirs in table.columns and theirs != ours}
@@ -302,6 +315,7 @@ def _load_register_log(config: Config, as_of_override) -> Loaded:
     rows_read = sum(len(t.frame) for t in (register, events, readings) if t is not None)
     files = _account([(r, t) for r, t in (("register", register), ("events", events), ("readings", readings))
                       if t is not None], outcome, q)
+    warnings += _cut_last_rows(q, register, events, readings)
     q.seal()
     del register, events, readings, reg_ok, ev_ok, rd_ok  # only the life table is left to make
     return _finish(config, outcome, q, rows_read, as_of, reading_cols + static_cols, files, warnings)
@@ -391,6 +405,7 @@ def _load_life_table(config: Config, as_of_override) -> Loaded:
     if not dated and not marked:
         warnings += _all_in_service(outcome.frame, table.name, config)
     files = _account([("life_table", table)], outcome, q)
+    warnings += _cut_last_rows(q, table)
     q.seal()
     rows_read = len(table.frame)
     del table, f, ok
@@ -476,6 +491,11 @@ def _finish(config: Config, outcome: BuildOutcome, q: Quarantine, rows_read: int
             frame = frame.sort_values(sort, kind="mergesort").reset_index(drop=True)
         table = LifeTable.from_frame(frame, cov, fleet.categorical, as_of=as_of, source=config.source,
                                      meta={"renewal": fleet.renewal, "group_by": list(fleet.group_by)})
+        for c in cov:  # a covariate with no value anywhere (an empty readings file is named already)
+            if table.frame[c].isna().all() and not any(f"({c}" in w or f" {c}," in w or f" {c})" in w
+                                                       for w in warnings):
+                warnings.append(f"covariate {c} is empty for every unit: no kept row of the export holds a value "
+                                "for it. Check that column in the export, or remove it from fleet.covariates.")
     return Loaded(table=table, quarantine=q, rows_read=rows_read, rows_kept=rows_kept,
                   rows_after_as_of=rows_after_as_of, as_of=as_of, files=files, warnings=warnings)
 
