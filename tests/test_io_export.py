@@ -414,3 +414,19 @@ def test_covariate_with_no_value_anywhere_is_named(tmp_path):
     result = load_export(fleet(tmp_path, 6, readings_text="\n".join(rows) + "\n"))
     assert result.warnings == ("covariate vibration_mm_s is empty for every unit: no kept row of the export holds "
                                "a value for it. Check that column in the export, or remove it from fleet.covariates.",)
+
+
+def test_date_in_another_format_names_the_per_file_setting_and_it_works(tmp_path):
+    rows = ["PU-1,13/01/2022,5", "PU-2,01/03/2022,5"]
+    events = ["PU-1,02/27/2023,failure", "PU-2,03/02/2023,failure"]
+    one = _register_events(tmp_path, rows, events, inp={"date_format": "%d/%m/%Y"})
+    q = load_export(one).quarantine
+    assert q[["source_file", "line", "value", "reason"]].values.tolist()[0] == [
+        "events.csv", 2, "02/27/2023", "unparseable date (not in the format '%d/%m/%Y' set for this file; use "
+        'YYYY-MM-DD, or give events its own format under [input]: date_format_by_file = { events = "..." })']
+    both = _register_events(tmp_path, rows, events, inp={"date_format": "%d/%m/%Y",
+                                                         "date_format_by_file": {"events": "%m/%d/%Y"}})
+    result = load_export(both)
+    assert result.rows_quarantined == 0
+    assert sorted(result.table.frame.loc[result.table.frame["failed"], "exit_date"].dt.strftime("%Y-%m-%d")) == [
+        "2023-02-27", "2023-03-02"]

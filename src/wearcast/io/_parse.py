@@ -249,6 +249,10 @@ def _parse_free(text: pd.Series, day_first: bool | None, iso_only: bool = False)
     return parsed
 
 
+def _is_date(y: int, m: int, d: int) -> bool:
+    return 1 <= m <= 12 and 1 <= d <= calendar.monthrange(y, m)[1]
+
+
 def not_a_date_reason(text: str, date_format: str | None, day_first: bool | None) -> str:
     """Why a cell written in a date's form is not a date (``""`` when it is not in a date's form).
 
@@ -264,6 +268,8 @@ def not_a_date_reason(text: str, date_format: str | None, day_first: bool | None
     elif num:
         a, b, y = int(num[1]), int(num[3]), int(num[4])
         d, m = (b, a) if day_first is False else (a, b)
+        if not _is_date(y, m, d) and _is_date(y, d, m):
+            return ""  # a date in the other order: the format, not the calendar, is the problem
     else:
         return ""
     if not 1 <= m <= 12:

@@ -155,8 +155,9 @@ def _dates(frame: pd.DataFrame, col: str, q: Quarantine, config: Config, day_fir
         return
     fmt = _date_format(config, role)
     parsed, bad = _parse.parse_dates(frame[col], date_format=fmt, day_first=day_first)
-    hint = f"use YYYY-MM-DD or fix the date format for {role} (now {fmt!r})" \
-        if fmt else f"use YYYY-MM-DD or set input.date_format (or date_format_by_file for {role})"
+    hint = (f"not in the format {fmt!r} set for this file; use YYYY-MM-DD, or give {role} its own format "
+            f"under [input]: date_format_by_file = {{ {role} = \"...\" }}") if fmt \
+        else f"use YYYY-MM-DD or set input.date_format (or date_format_by_file = {{ {role} = \"...\" }})"
     if bad.any():
         reasons = pd.Series(f"unparseable date ({hint})", index=frame.index, dtype=object)
         cells = frame[col][bad].astype(str)
