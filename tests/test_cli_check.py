@@ -42,6 +42,8 @@ def test_good_export_prints_summary_and_writes_files(tmp_path):
         "time at risk (days)  957.0",
         "as of                2022-06-01",
         "rows in = kept + quarantined: 4 = 4 + 0",
+        "  register_ambiguous.csv (register): 3 read = 3 kept + 0 quarantined",
+        "  events_ambiguous.csv (events): 1 read = 1 kept + 0 quarantined",
         # MTBF = 957 days / 1 failure; 90 % bounds 2T / chi2(0.95; 4) and 2T / chi2(0.05; 2) with
         # chi2 quantiles 9.4877 and 0.10259 (standard chi-square table values)
         "fleet MTBF: 957 days = 2.6 years (90% bounds 202 to 18,657 days)",
@@ -82,7 +84,8 @@ def test_unknown_config_key_exits_78(tmp_path):
     assert result.exit_code == 78
     assert result.stderr == (
         f"error: {tmp_path / 'fleet.toml'}: unknown key 'max_bad' in [fleet]; known keys: as_of, categorical, "
-        "covariates, decommission_kinds, failure_kinds, group_by, max_bad_share, records_start, renewal, "
+        "covariates, decommission_kinds, failure_kinds, group_by, max_bad_share, no_failures_expected, ranges, "
+        "records_start, renewal, "
         "replacement_kinds.\n")
 
 
@@ -99,9 +102,11 @@ def test_too_many_bad_rows_exits_65_and_writes_quarantine(tmp_path):
     quarantine = tmp_path / "out" / "quarantine.csv"
     assert result.exit_code == 65
     assert result.stderr == (
-        "error: 4 of 8 rows (50.0%) were rejected, above fleet.max_bad_share = 5.0%. Most common reason: "
-        "unit id in scientific notation (a spreadsheet turned it into a number); re-export the id column as "
-        "text (3 rows), first at events_mangled.csv line 4, column unit_id (value '1.23E+05'). Fix the export "
+        # both files are 2 of 4 rejected (50 %); the share is per file and the first of the worst is named
+        "error: register_mangled.csv: 2 of 4 rows (50.0%) were rejected, above fleet.max_bad_share = 5.0% "
+        "(taken per file). Most common reason: unit id in scientific notation (a spreadsheet turned it into a "
+        "number); re-export the id column as text (2 rows), first at line 2, column unit_id (value '1.23E+05'). "
+        "Fix the export "
         f"(or raise fleet.max_bad_share); rejected rows are listed in {quarantine}.\n"
         f"rejected rows and reasons: {quarantine}\n")
     q = pd.read_csv(quarantine, dtype=str)
@@ -167,3 +172,39 @@ def test_costs_need_both_keys_and_too_few_failures_give_no_age(tmp_path):
     assert again.exit_code == 0, again.stderr
     assert not (tmp_path / "out" / "replacement_ages.csv").exists()
     assert not (tmp_path / "out" / "run_summary.json").exists()
+
+
+def test_failed_rerun_leaves_no_earlier_life_table_beside_the_new_quarantine(tmp_path):
+    good = run(tmp_path, inputs("register_ambiguous.csv", "events_ambiguous.csv", 'date_format = "%d/%m/%Y"\n')
+               + "[fleet]\nas_of = 2022-06-01\n")
+    assert good.exit_code == 0, good.stderr
+    out = tmp_path / "out"
+    assert (out / "life_table.csv").exists() and (out / "check_summary.json").exists()
+    bad = run(tmp_path, inputs("register_mangled.csv", "events_mangled.csv"))
+    assert bad.exit_code == 65
+    assert sorted(p.name for p in out.iterdir()) == ["quarantine.csv"]
+    assert set(pd.read_csv(out / "quarantine.csv")["source_file"]) == {"register_mangled.csv", "events_mangled.csv"}
+    # a stop before any row is read (missing column) leaves no earlier quarantine either
+    again = run(tmp_path, inputs("register_ambiguous.csv", "events_ambiguous.csv", 'date_format = "%d/%m/%Y"\n')
+                + "[fleet]\nas_of = 2022-06-01\n")
+    assert again.exit_code == 0
+    missing = run(tmp_path, inputs("register_no_install.csv", "events_ok.csv"))
+    assert missing.exit_code == 65
+    assert list(out.iterdir()) == []
+
+
+def test_warnings_are_printed_and_kept_in_the_summary(tmp_path):
+    import json
+
+    (tmp_path / "register.csv").write_text("unit_id,install_date\nP-1,2021-01-04\nP-2,2021-02-01\n")
+    (tmp_path / "events.csv").write_text("unit_id,event_date,event_kind\nP-1,2022-03-01,failure\n")
+    (tmp_path / "readings.csv").write_text("unit_id,reading_date,vibration_mm_s\n")
+    result = run(tmp_path, '[input]\nregister = "register.csv"\nevents = "events.csv"\nreadings = "readings.csv"\n'
+                           '[fleet]\nas_of = 2022-06-01\ncovariates = ["vibration_mm_s"]\n')
+    assert result.exit_code == 0, result.stderr
+    warning = ("readings.csv has a header but no rows: the reading covariates (vibration_mm_s) are empty for every "
+               "unit.")
+    assert f"warning: {warning}" in result.stdout.splitlines()
+    assert "  readings.csv (readings): 0 read = 0 kept + 0 quarantined" in result.stdout.splitlines()
+    summary = json.loads((tmp_path / "out" / "check_summary.json").read_text())
+    assert summary["warnings"] == [warning]

@@ -187,3 +187,68 @@ def test_bootstrap_weights_are_the_same_draw_as_copied_units():
     rs_w = prepare_risk_sets(weighted.entry, weighted.exit, weighted.event, weights=weights, ties="breslow")
     rs_c = prepare_risk_sets(copied["entry_age"], copied["exit_age"], copied["failed"], ties="breslow")
     assert cox_loss(rs_w, eta_w) == pytest.approx(cox_loss(rs_c, eta_c), rel=1e-12)
+
+
+# -- retired units in a life table of ages ------------------------------------------------
+
+def _ages_export(folder, n_units: int, retired: dict[int, str] | None = None, failed_every: int = 4):
+    """An invented fleet of pump lives in days: every ``failed_every``-th unit failed; ``retired``
+    gives the retired cell of some units (no column at all when None)."""
+    rows = []
+    for i in range(n_units):
+        row = {"unit_id": f"PU-{i:04d}", "entry": "0", "exit": str(300 + 7 * i),
+               "failed": "1" if i % failed_every == 0 else "0"}
+        if retired is not None:
+            row["retired"] = retired.get(i, "")
+        rows.append(row)
+    pd.DataFrame(rows).to_csv(folder / "lives.csv", index=False)
+
+
+def test_retired_units_are_not_in_service(tmp_path):
+    _ages_export(tmp_path, 12, retired={1: "1", 2: "true", 5: "0"})
+    result = load_export(_config(tmp_path))
+    table = result.table
+    running = set(table.in_service().frame["unit_id"])
+    # not in service: the failed units (0, 4, 8) and the two marked retired (1, 2); blank and 0 run on
+    assert running == {f"PU-{i:04d}" for i in (3, 5, 6, 7, 9, 10, 11)}
+    assert table.summary()["in_service_units"] == 7
+    # the ranking's in-service set (wearcast.resample.current_units) is read from the same column
+    from wearcast.resample import current_units
+
+    assert set(current_units(table)[1]) == running
+    assert result.warnings == ()
+
+
+def test_bad_retired_flag_is_quarantined(tmp_path):
+    _ages_export(tmp_path, 6, retired={3: "yes"})
+    result = load_export(_config(tmp_path))
+    assert result.quarantine[["line", "column", "value", "reason"]].values.tolist() == [
+        [5, "retired", "yes", "retired flag is not 0/1/true/false (blank: not retired)"]]
+
+
+def test_retired_column_can_be_mapped(tmp_path):
+    _ages_export(tmp_path, 6, retired={3: "1"})
+    (tmp_path / "lives.csv").write_text((tmp_path / "lives.csv").read_text().replace("retired", "scrapped", 1))
+    cfg = _config(tmp_path)
+    assert "PU-0003" in set(load_export(cfg).table.in_service().frame["unit_id"])  # the column is not found
+    mapped = config_from_dict({"input": {"shape": "life_table", "life_table": "lives.csv"},
+                               "columns": {"retired": "scrapped"}, "fleet": {"max_bad_share": 1.0}})
+    mapped = mapped.__class__(**{**mapped.__dict__, "base_dir": tmp_path})
+    assert "PU-0003" not in set(load_export(mapped).table.in_service().frame["unit_id"])
+
+
+def test_large_all_in_service_table_warns(tmp_path):
+    _ages_export(tmp_path, 250)
+    result = load_export(_config(tmp_path))
+    # 250 units, every 4th failed (63 units): the other 187 all read as in service
+    assert result.table.summary()["in_service_units"] == 187
+    assert result.warnings == (
+        "every one of the 187 units of lives.csv whose last life did not end in a failure reads as in service: "
+        "ages alone cannot say a unit was retired. If some were retired or decommissioned, add a column "
+        "'retired' (1 for those units; set columns.retired to use another name) so they are left out of the "
+        "ranking and the fleet forecast.",)
+    # a small table, or one that marks its retired units, gets no such warning
+    _ages_export(tmp_path, 150)
+    assert load_export(_config(tmp_path)).warnings == ()
+    _ages_export(tmp_path, 250, retired={7: "1"})
+    assert load_export(_config(tmp_path)).warnings == ()

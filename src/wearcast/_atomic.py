@@ -1,7 +1,9 @@
 """Atomic file writes: temp file in the same folder, fsync, then replace.
 
 A reader never sees a half-written output, and a crash leaves the previous
-file intact. Temporary files carry the suffix ``.wearcast-tmp`` so a later run
+file intact. Files get the permissions a plain ``open(path, "w")`` would give
+(``0o666`` less the process umask), so a shared run folder stays readable:
+the private temporary file is widened before it replaces the output. Temporary files carry the suffix ``.wearcast-tmp`` so a later run
 can find and remove stale ones (:func:`remove_stale_temporaries`).
 """
 
@@ -10,12 +12,22 @@ from __future__ import annotations
 import json
 import os
 import tempfile
+import threading
 from pathlib import Path
 from typing import Any
 
 from wearcast.exceptions import OutputError
 
 TMP_SUFFIX = ".wearcast-tmp"
+_umask_lock = threading.Lock()
+
+
+def _file_mode() -> int:
+    """``0o666`` less the process umask (read by setting and restoring it)."""
+    with _umask_lock:
+        mask = os.umask(0o022)
+        os.umask(mask)
+    return 0o666 & ~mask
 
 
 def _fsync_dir(folder: Path) -> None:
@@ -50,6 +62,7 @@ def write_bytes(path: str | os.PathLike, data: bytes) -> Path:
         ) from exc
     try:
         with os.fdopen(fd, "wb") as handle:
+            os.fchmod(handle.fileno(), _file_mode())  # mkstemp makes the file 0o600
             handle.write(data)
             handle.flush()
             os.fsync(handle.fileno())

@@ -34,6 +34,8 @@ class InputSection:
     decimal: str = "."  # "," for decimal-comma exports
     encoding: str = "utf-8"  # a BOM is removed either way
     date_format: str | None = None  # strftime format, e.g. "%d/%m/%Y"; required when dates are ambiguous
+    date_format_by_file: dict[str, str] = field(default_factory=dict)  # register/events/readings/life_table -> format
+    encoding_by_file: dict[str, str] = field(default_factory=dict)  # register/events/readings/life_table -> encoding
     age_unit: str = "days"  # unit of numeric ages in a life_table export: days, hours, weeks, months, years
 
 
@@ -52,6 +54,7 @@ class ColumnsSection:
     exit: str = "exit"
     failed: str = "failed"
     life: str = "life"  # life_table shape only, optional: life number within a unit (1, 2, ...)
+    retired: str = "retired"  # life_table shape only, optional: 1/true marks a retired or decommissioned unit
 
 
 @dataclass(frozen=True)
@@ -67,7 +70,9 @@ class FleetSection:
     failure_kinds: list[str] = field(default_factory=lambda: ["failure"])
     replacement_kinds: list[str] = field(default_factory=lambda: ["replacement"])
     decommission_kinds: list[str] = field(default_factory=lambda: ["decommission"])
-    max_bad_share: float = 0.05  # stop (exit 65) when more than this share of rows is rejected
+    max_bad_share: float = 0.05  # stop (exit 65) when more than this share of one file's rows is rejected
+    ranges: dict[str, list[float]] = field(default_factory=dict)  # covariate -> [low, high]; outside: quarantined
+    no_failures_expected: bool = False  # true: no failure in 100+ unit-years is not an error
 
 
 @dataclass(frozen=True)

@@ -46,13 +46,18 @@ def check_stage(config: Config, out_dir: Path, state: JobState) -> dict:
     """Read and validate the export; write quarantine.csv, life_table.csv,
     life_statistics.csv (MTBF, B-lives, Weibull per group), replacement_ages.csv
     (when [costs] are set) and check_summary.json."""
+    from wearcast.exceptions import WearcastError
     from wearcast.io import load_export, write_check
     from wearcast.lifestats import fleet_headline, life_statistics, write_life_statistics
     from wearcast.modes import check_modes_by
     from wearcast.replacement import REPLACEMENT_FILE, check_costs, replacement_ages, write_replacement_ages
     from wearcast.replacement import fleet_headline as replacement_headline
 
-    state.export = load_export(config, quarantine_dir=out_dir)
+    try:
+        state.export = load_export(config, quarantine_dir=out_dir)
+    except WearcastError as exc:
+        _remove_earlier_check(out_dir, keep_quarantine=bool(getattr(exc, "quarantine_path", None)))
+        raise
     summary = write_check(state.export, out_dir)
     check_modes_by(state.export.table.frame, config.ranking.modes_by, config.ranking.mode_prior_failures)
     stats = life_statistics(state.export.table, config.fleet.group_by)
@@ -70,6 +75,18 @@ def check_stage(config: Config, out_dir: Path, state: JobState) -> dict:
     on_disk = {k: (_relative(v, out_dir) if k.endswith("_path") else v) for k, v in summary.items()}
     summary["check_summary_path"] = str(_atomic.write_json(out_dir / "check_summary.json", on_disk))
     return summary
+
+
+#: What the check stage writes; a failed check removes an earlier run's copies so the folder
+#: never shows a previous life table beside this run's quarantine as if they belonged together.
+CHECK_OUTPUTS = ("life_table.csv", "check_summary.json", "life_statistics.csv", "replacement_ages.csv")
+
+
+def _remove_earlier_check(out_dir: Path, *, keep_quarantine: bool) -> None:
+    from wearcast.io import QUARANTINE_FILE
+
+    for name in CHECK_OUTPUTS + (() if keep_quarantine else (QUARANTINE_FILE,)):
+        _atomic.remove_output(Path(out_dir) / name)
 
 
 def _relative(path, folder: Path):

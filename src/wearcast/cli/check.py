@@ -35,8 +35,15 @@ def format_summary(summary: dict) -> list[str]:
         f"{summary['rows_quarantined']}"
         + (f" + {summary['rows_after_as_of']} after as_of" if summary.get("rows_after_as_of") else "")
     )
+    for f in summary.get("files", ()):
+        lines.append(
+            f"  {f['file']} ({f['role']}): {f['rows_read']} read = {f['rows_kept']} kept + "
+            f"{f['rows_quarantined']} quarantined"
+            + (f" + {f['rows_after_as_of']} after as_of" if f.get("rows_after_as_of") else ""))
     for reason, count in summary["quarantined_by_reason"].items():
         lines.append(f"  {count:>6}  {reason}")
+    for warning in summary.get("warnings", ()):
+        lines.append(f"warning: {warning}")
     lines.extend(life_lines(summary))
     lines.append(f"quarantine: {summary['quarantine_path']}")
     lines.append(f"life table: {summary['life_table_path']}")

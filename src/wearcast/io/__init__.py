@@ -25,7 +25,7 @@ from wearcast import _atomic
 from wearcast.config import Config
 from wearcast.exceptions import DataError
 from wearcast.io._quarantine import QUARANTINE_COLUMNS, by_reason
-from wearcast.io.export import QUARANTINE_FILE, bad_share_error, load, write_outputs
+from wearcast.io.export import QUARANTINE_FILE, bad_share_error, load, no_failures_error, write_outputs
 from wearcast.lifetable import LifeTable
 
 LIFE_TABLE_FILE = "life_table.csv"
@@ -47,6 +47,8 @@ class ExportResult:
     rows_quarantined: int
     rows_after_as_of: int
     quarantine_path: Path | None
+    files: tuple = ()  # per file: {file, role, rows_read, rows_kept, rows_quarantined, rows_after_as_of}
+    warnings: tuple = ()  # plain sentences: empty files, a file cut short, no failures, ...
 
     def by_reason(self) -> dict[str, int]:
         """Rejected rows per reason, most frequent first."""
@@ -77,9 +79,15 @@ def load_export(config: Config, *, as_of: dt.date | None = None,
             f"{config.source}: no usable rows left in the export ({loaded.rows_read} read, {len(frame)} rejected, "
             f"{loaded.rows_after_as_of} after as_of). Check input paths, as_of and records_start."
             , quarantine_path=None if path is None else str(path))
+    stop = no_failures_error(loaded, config, path)
+    if stop is not None:
+        if as_of is None:
+            raise stop
+        loaded.warnings.append(str(stop))  # an as-of origin early in the records: the full export was checked
     return ExportResult(table=loaded.table, quarantine=frame, rows_read=loaded.rows_read,
                         rows_kept=loaded.rows_kept, rows_quarantined=len(frame),
-                        rows_after_as_of=loaded.rows_after_as_of, quarantine_path=path)
+                        rows_after_as_of=loaded.rows_after_as_of, quarantine_path=path,
+                        files=tuple(loaded.files), warnings=tuple(loaded.warnings))
 
 
 def check_export(config: Config, out_dir: Path) -> dict:
@@ -87,7 +95,8 @@ def check_export(config: Config, out_dir: Path) -> dict:
 
     Returns a summary: units, lives, rows, failures, suspensions,
     delayed_entries, time_at_risk_days, in_service_units, as_of, rows_read,
-    rows_kept, rows_quarantined, rows_after_as_of, quarantined_by_reason,
+    rows_kept, rows_quarantined, rows_after_as_of, files (rows read / kept /
+    quarantined / after as_of per file), warnings, quarantined_by_reason,
     quarantine_path, life_table_path.
     """
     out_dir = Path(out_dir)
@@ -106,6 +115,8 @@ def write_check(result: ExportResult, out_dir: Path) -> dict:
         rows_kept=result.rows_kept,
         rows_quarantined=result.rows_quarantined,
         rows_after_as_of=result.rows_after_as_of,
+        files=[dict(f) for f in result.files],
+        warnings=list(result.warnings),
         quarantined_by_reason=result.by_reason(),
         quarantine_path=str(result.quarantine_path),
         life_table_path=str(table_path),

@@ -461,7 +461,8 @@ def build_from_intervals(rows: pd.DataFrame, settings: BuildSettings, *, dated: 
     an earlier interval of the same life. In a backtest (dated only) rows that
     start after ``as_of`` are set aside and rows spanning it end there as
     suspensions. A unit's last row, when not a failure, is in service (dated:
-    only when it ends on ``as_of``).
+    only when it ends on ``as_of``), unless the unit is marked ``retired``
+    (optional bool column: any row of the unit marked retires the unit).
     """
     out = BuildOutcome(frame=pd.DataFrame())
     frame = rows.copy()
@@ -505,6 +506,8 @@ def build_from_intervals(rows: pd.DataFrame, settings: BuildSettings, *, dated: 
     in_service = last & top_life & ~frame["failed"].astype(bool)
     if dated:
         in_service &= frame["exit_date"] == settings.as_of
+    if "retired" in frame:
+        in_service &= ~frame.groupby("unit_id", sort=False)["retired"].transform("any").astype(bool)
     frame["in_service"] = in_service.to_numpy()
     out.frame = frame.drop(columns=[c for c in ("_source", "_line", "_raw", "_malformed") if c in frame])
     return out

@@ -19,6 +19,7 @@ both (mixed) is an error that asks for ``input.date_format``.
 
 from __future__ import annotations
 
+import calendar
 import re
 from dataclasses import dataclass
 
@@ -27,8 +28,15 @@ import pandas as pd
 
 from wearcast.exceptions import DataError
 
-_ISO = re.compile(r"^(\d{4})[-/](\d{1,2})[-/](\d{1,2})(?:[ T](\d{1,2}):(\d{2})(?::(\d{2})(?:\.\d+)?)?)?$")
-_NUMERIC_DATE = re.compile(r"^(\d{1,2})([/.\-])(\d{1,2})\2(\d{4})(?:[ T](\d{1,2}):(\d{2})(?::(\d{2})(?:\.\d+)?)?)?$")
+# A time may end in a UTC offset (``Z``, ``+02:00``, ``-0500``): the date is read as written
+# (the calendar date where the record was made), the offset is not applied.
+_OFFSET = r"(?:\s*(?:Z|[+-]\d{2}(?::?\d{2})?))?"
+_ISO = re.compile(r"^(\d{4})[-/](\d{1,2})[-/](\d{1,2})(?:[ T](\d{1,2}):(\d{2})(?::(\d{2})(?:\.\d+)?)?"
+                  + _OFFSET + r")?$")
+_NUMERIC_DATE = re.compile(r"^(\d{1,2})([/.\-])(\d{1,2})\2(\d{4})(?:[ T](\d{1,2}):(\d{2})(?::(\d{2})(?:\.\d+)?)?"
+                           + _OFFSET + r")?$")
+#: A time (and offset) after a date, for dates read with ``input.date_format``.
+_TIME_TAIL = re.compile(r"[ T]\d{1,2}:\d{2}(?::\d{2}(?:\.\d+)?)?" + _OFFSET + r"$")
 _SCIENTIFIC = re.compile(r"^[+-]?\d+(?:[.,]\d+)?[eE][+-]?\d+$")
 _FLAGS = {"0": False, "1": True, "true": True, "false": False}
 
@@ -127,6 +135,7 @@ class DateSample:
     column: str
     values: pd.Series  # text cells
     lines: pd.Series  # line numbers, aligned with values
+    role: str = ""  # the [input] key naming the file (register, events, ...), for per-file advice
 
 
 def day_first_from_values(samples: list[DateSample]) -> bool | None:
@@ -156,7 +165,7 @@ def day_first_from_values(samples: list[DateSample]) -> bool | None:
                            ((a <= 12) & (b <= 12) & ok, "both")):
             if mask.any():
                 i = int(rows[int(np.flatnonzero(mask)[0])])
-                where = (s.source, int(s.lines.iloc[i]), s.column, str(s.values.iloc[i]).strip())
+                where = (s.source, int(s.lines.iloc[i]), s.column, str(s.values.iloc[i]).strip(), s.role)
                 if kind == "day" and proof_day is None:
                     proof_day = where
                 elif kind == "month" and proof_month is None:
@@ -165,11 +174,16 @@ def day_first_from_values(samples: list[DateSample]) -> bool | None:
                     undecided = where
     if proof_day and proof_month:
         d, m = proof_day, proof_month
+        if d[0] != m[0] and d[4] and m[4]:  # two files, two orders: each file can be described
+            fix = (f"Set the order per file under [input]: date_format_by_file = {{ {d[4]} = \"%d/%m/%Y\", "
+                   f"{m[4]} = \"%m/%d/%Y\" }}.")
+        else:
+            fix = ("Re-export with one date format and set input.date_format "
+                   "(for example date_format = \"%d/%m/%Y\").")
         raise DataError(
             f"{d[0]}: line {d[1]}, column {d[2]}: date {d[3]!r} can only be day/month, but "
             f"{m[0]} line {m[1]}, column {m[2]} has {m[3]!r}, which can only be month/day: the export mixes "
-            "date orders. Re-export with one date format and set input.date_format "
-            "(for example date_format = \"%d/%m/%Y\")."
+            f"date orders. {fix}"
         )
     if proof_day:
         return True
@@ -198,9 +212,24 @@ def _parse_dates(values: pd.Series, date_format: str | None, day_first: bool | N
     empty = (text == "").to_numpy()
     if date_format is not None:
         parsed = pd.to_datetime(text.where(~empty, None), format=date_format, errors="coerce")
+        miss = parsed.isna().to_numpy() & ~empty
+        if miss.any():  # the same date followed by a time (and offset), as many exports write it
+            bare = text[miss].str.replace(_TIME_TAIL, "", regex=True)
+            parsed[miss] = pd.to_datetime(bare, format=date_format, errors="coerce")
+            miss = parsed.isna().to_numpy() & ~empty
+        if miss.any():  # ISO dates are unambiguous: a file of a mixed export may use them
+            parsed[miss] = _parse_free(text[miss], None, iso_only=True)
         return parsed, parsed.isna().to_numpy() & ~empty
+    parsed = _parse_free(text, day_first)
+    return parsed, parsed.isna().to_numpy() & ~empty
+
+
+def _parse_free(text: pd.Series, day_first: bool | None, iso_only: bool = False) -> pd.Series:
+    """ISO and ``a/b/YYYY`` dates (NaT where neither fits or the date does not exist)."""
     iso = text.str.extract(_ISO)
     num = text.str.extract(_NUMERIC_DATE)
+    if iso_only:
+        num[:] = np.nan
     year = pd.to_numeric(iso[0], errors="coerce").fillna(pd.to_numeric(num[3], errors="coerce"))
     if day_first is None or day_first:
         day_part, month_part = num[0], num[2]
@@ -214,7 +243,38 @@ def _parse_dates(values: pd.Series, date_format: str | None, day_first: bool | N
     parts = pd.DataFrame({"year": year, "month": month, "day": day, "hour": hour,
                           "minute": minute, "second": second})
     ok = parts[["year", "month", "day"]].notna().all(axis=1)
-    parsed = pd.Series(pd.NaT, index=values.index, dtype="datetime64[ns]")
+    parsed = pd.Series(pd.NaT, index=text.index, dtype="datetime64[ns]")
     if ok.any():
         parsed[ok] = pd.to_datetime(parts[ok].astype("int64"), errors="coerce")
-    return parsed, parsed.isna().to_numpy() & ~empty
+    return parsed
+
+
+def _is_date(y: int, m: int, d: int) -> bool:
+    return 1 <= m <= 12 and 1 <= d <= calendar.monthrange(y, m)[1]
+
+
+def not_a_date_reason(text: str, date_format: str | None, day_first: bool | None) -> str:
+    """Why a cell written in a date's form is not a date (``""`` when it is not in a date's form).
+
+    ``2023-02-29`` has the form of a date but February 2023 has 28 days; saying
+    "use YYYY-MM-DD" would send the user to fix the wrong thing.
+    """
+    text = str(text).strip()
+    if date_format and "%d" in date_format and "%m" in date_format:
+        day_first = date_format.index("%d") < date_format.index("%m")
+    iso, num = _ISO.match(text), _NUMERIC_DATE.match(text)
+    if iso:
+        y, m, d = int(iso[1]), int(iso[2]), int(iso[3])
+    elif num:
+        a, b, y = int(num[1]), int(num[3]), int(num[4])
+        d, m = (b, a) if day_first is False else (a, b)
+        if not _is_date(y, m, d) and _is_date(y, d, m):
+            return ""  # a date in the other order: the format, not the calendar, is the problem
+    else:
+        return ""
+    if not 1 <= m <= 12:
+        return f"not a calendar date: there is no month {m}"
+    days = calendar.monthrange(y, m)[1]
+    if not 1 <= d <= days:
+        return f"not a calendar date: {calendar.month_name[m]} {y} has {days} days"
+    return ""

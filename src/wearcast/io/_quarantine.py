@@ -11,6 +11,7 @@ row. A row rejected twice keeps its first reason, so row accounting (rows read
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 import numpy as np
@@ -33,11 +34,17 @@ class Quarantine:
         self._taken: dict[str, np.ndarray] = {}  # source -> bool per raw row
         self._chunks: list[tuple[str, np.ndarray, np.ndarray, np.ndarray, np.ndarray]] = []
         self._parts: list[pd.DataFrame] = []  # sealed chunks
+        self._names: dict[str, dict[str, str]] = {}  # source -> {wearcast's column name: the export's}
 
     def track(self, table) -> None:
         """Register a :class:`~wearcast.io._readers.RawTable` (rows are its frame positions)."""
         self._tables[table.name] = table
         self._taken[table.name] = np.zeros(len(table.frame), dtype=bool)
+
+    def name_columns(self, source: str, names: dict[str, str]) -> None:
+        """How ``source``'s columns are called in the export (wearcast's name -> the export's),
+        so the quarantine file shows the export's own names and cells."""
+        self._names[source] = dict(names)
 
     def __len__(self) -> int:
         return int(sum(int(t.sum()) for t in self._taken.values()))
@@ -109,12 +116,13 @@ class Quarantine:
         (frees the export's memory once every row is placed). No rejections after this."""
         for source, index, cols, cells, whys in self._chunks:
             table = self._tables[source]
+            cols, cells = _as_read(table, self._names.get(source, {}), index, cols, cells)
             lines = table.frame["_line"].to_numpy()[index]
             self._parts.append(pd.DataFrame({
                 "source_file": np.full(len(index), source, dtype=object),
                 "line": lines.astype(np.int64),
-                "column": cols, "value": cells, "reason": whys,
-                "original_row": original_rows(table, index),
+                "column": cols, "value": _visible(cells), "reason": whys,
+                "original_row": _visible(original_rows(table, index)),
             }))
         self._chunks = []
         self._tables = {}
@@ -136,6 +144,28 @@ def original_rows(table, index: np.ndarray) -> np.ndarray:
     cells = [table.frame[c].to_numpy()[index] for c in table.columns]
     sep = getattr(table, "delimiter", ",")
     return np.array([join_fields(row, sep) for row in zip(*cells)], dtype=object)
+
+
+def _as_read(table, names: dict[str, str], index: np.ndarray, cols, cells: np.ndarray):
+    """Column names as the export calls them and, for the export's own columns, the
+    cell text as read (not the parsed or converted value)."""
+    cols = np.full(len(index), cols, dtype=object) if isinstance(cols, str) else np.asarray(cols, dtype=object)
+    theirs = np.array([names.get(c, c) for c in cols], dtype=object)
+    cells = np.asarray(cells, dtype=object).copy()
+    for name in set(theirs.tolist()):
+        if name and name in table.columns:
+            hit = theirs == name
+            cells[hit] = [str(v) for v in table.frame[name].to_numpy()[index[hit]]]
+    return theirs, cells
+
+
+_CONTROL = re.compile(r"[\x00-\x08\x0b\x0c\x0e-\x1f\x7f]")
+
+
+def _visible(texts: np.ndarray) -> np.ndarray:
+    """Control bytes (NUL from a damaged transfer, ...) written as ``\\x00`` so the
+    quarantine file stays text that spreadsheets and editors open."""
+    return np.array([_CONTROL.sub(lambda m: f"\\x{ord(m.group()):02x}", str(t)) for t in texts], dtype=object)
 
 
 def _source_of(rows: pd.DataFrame) -> str:

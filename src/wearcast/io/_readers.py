@@ -23,6 +23,7 @@ Rows whose field count differs from the header's carry a reason in
 from __future__ import annotations
 
 import csv
+import dataclasses
 import io
 from dataclasses import dataclass
 from pathlib import Path
@@ -30,7 +31,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from wearcast.exceptions import DataError, InputMissingError
+from wearcast.exceptions import ConfigError, DataError, InputMissingError
 
 BOOKKEEPING = ("_source", "_line", "_raw", "_malformed")
 _DELIMITERS = ",;\t|"
@@ -44,6 +45,8 @@ class RawTable:
     frame: pd.DataFrame
     columns: tuple[str, ...]  # the export's own column names, in file order
     delimiter: str = ","  # joins a row's cells into the quarantine's original_row
+    truncated: str = ""  # a sentence when the file ends in the middle of a row (a cut transfer)
+    ends_open: bool = False  # no line break after the last row (CSV)
 
     @property
     def name(self) -> str:
@@ -57,12 +60,15 @@ def read_export_file(
     encoding: str = "utf-8",
     sheet: str | None = None,
     compact: bool = False,
+    role: str | None = None,
 ) -> RawTable:
     """Read one export file by its suffix (.csv/.txt, .xlsx/.xlsm, .parquet).
 
     Raises :class:`InputMissingError` when the file is missing or unreadable and
     :class:`DataError` when its header is unusable (empty, duplicate names).
     ``compact``: export columns as categoricals of ``str`` (same cells, less memory).
+    ``role``: the config's [input] key naming the file, so an encoding hint can name
+    the per-file setting.
     """
     path = Path(path)
     if not path.is_file():
@@ -76,7 +82,7 @@ def read_export_file(
     elif suffix in (".parquet", ".pq"):
         raw = _read_parquet(path)
     else:
-        raw = _read_csv(path, delimiter, encoding, compact)
+        raw = _read_csv(path, delimiter, encoding, compact, role)
     return _compacted(raw) if compact else raw
 
 
@@ -88,20 +94,33 @@ def _compacted(raw: RawTable) -> RawTable:
     return raw
 
 
-def _read_csv(path: Path, delimiter: str | None, encoding: str, compact: bool = False) -> RawTable:
+_UTF16_BOMS = (b"\xff\xfe", b"\xfe\xff")
+
+
+def _read_csv(path: Path, delimiter: str | None, encoding: str, compact: bool = False,
+              role: str | None = None) -> RawTable:
     try:
         data = path.read_bytes()
     except OSError as exc:
         raise InputMissingError(f"cannot open {path}: {exc.strerror}.") from exc
-    codec = "utf-8-sig" if encoding.lower().replace("_", "-") in ("utf-8", "utf8") else encoding
+    utf8 = encoding.lower().replace("_", "-") in ("utf-8", "utf8")
+    codec = "utf-8-sig" if utf8 else encoding
+    if utf8 and data.startswith(_UTF16_BOMS):
+        codec = "utf-16"  # the byte-order mark says so; "Unicode text" as spreadsheets save it
     try:
         text = data.decode(codec)
+    except LookupError as exc:
+        raise ConfigError(f"{path.name}: encoding {encoding!r} is not known; use a name such as \"utf-8\", "
+                          "\"utf-16\" or \"cp1252\".") from exc
     except UnicodeDecodeError as exc:
         line = data[: exc.start].count(b"\n") + 1
         raise DataError(
-            f"{path.name}: line {line}: bytes are not valid {encoding}. Save the export as UTF-8 "
-            "or set input.encoding (for example encoding = \"cp1252\")."
+            f"{path.name}: line {line}: bytes are not valid {encoding}. {_encoding_advice(data, role)}"
         ) from exc
+    head = data[:4096]
+    if codec == "utf-8-sig" and head.count(b"\0") > len(head) // 4:  # ASCII in UTF-16 is "valid" UTF-8
+        raise DataError(f"{path.name}: every other byte is NUL: the file is UTF-16 text, not {encoding}. "
+                        f"{_encoding_advice(data, role)}")
     text = text.lstrip("\ufeff")  # a BOM left by a non-UTF-8 codec
     sep = delimiter or sniff_delimiter(text)
     if codec == "utf-8-sig":  # the file's own bytes, less leading BOMs, are the text in UTF-8
@@ -112,9 +131,10 @@ def _read_csv(path: Path, delimiter: str | None, encoding: str, compact: bool = 
     else:
         body = text.encode("utf-8")
     del data, text  # one copy of the file in memory at a time
+    ends_open = bool(body.strip(b" \t")) and not body.endswith((b"\n", b"\r"))
     fast = _read_csv_fast(path, body, sep, compact)
     if fast is not None:
-        return fast
+        return _cut_short(fast, ends_open)
     text = body.decode("utf-8")
     del body
     reader = csv.reader(io.StringIO(text, newline=""), delimiter=sep)
@@ -141,7 +161,38 @@ def _read_csv(path: Path, delimiter: str | None, encoding: str, compact: bool = 
         raise DataError(f"{path.name}: the file is empty; expected a header line with column names.")
     _check_header(path, header, header_line)
     frame = pd.DataFrame(records, columns=header, dtype=object)
-    return _finish(path, frame, header, lines, malformed, sep)
+    return _cut_short(_finish(path, frame, header, lines, malformed, sep), ends_open)
+
+
+def _cut_short(raw: RawTable, ends_open: bool) -> RawTable:
+    """Mark a file whose last row has too few fields and no line break after it: a
+    transfer cut in the middle of a row (a complete last row without a final line
+    break is common and fine)."""
+    frame = raw.frame
+    if not ends_open or not len(frame) or str(frame["_malformed"].iloc[-1]) == "":
+        return dataclasses.replace(raw, ends_open=ends_open)
+    line = int(frame["_line"].iloc[-1])
+    note = (f"{raw.name} ends in the middle of line {line} ({frame['_malformed'].iloc[-1]}, no line break "
+            "after it): the file may be truncated (a cut transfer). Export or copy it again.")
+    return dataclasses.replace(raw, truncated=note, ends_open=True)
+
+
+def _encoding_advice(data: bytes, role: str | None) -> str:
+    """Name an encoding that reads every byte of ``data`` (tried in turn), as a setting that works."""
+    sample = data[:4096]
+    candidates = ["utf-16"] if sample.count(b"\0") > len(sample) // 4 else []
+    candidates += ["cp1252", "latin-1"]
+    for name in candidates:
+        try:
+            text = data.decode(name)
+        except UnicodeDecodeError:
+            continue
+        if "\0" in text:
+            continue
+        setting = (f"encoding_by_file = {{ {role} = \"{name}\" }} under [input] (or encoding = \"{name}\" for "
+                   "every file)") if role else f"input.encoding = \"{name}\""
+        return f"Save the export as UTF-8, or set {setting}."
+    return "Save the export as UTF-8 and set no encoding."
 
 
 def sniff_delimiter(text: str) -> str:
