@@ -325,7 +325,7 @@ def test_declared_range_overrides_the_default_and_the_fix_works(tmp_path):
     q = load_export(cfg).quarantine
     assert q[["line", "reason"]].values.tolist() == [
         [3, "outside the plausible range of vibration_mm_s: -inf to 45 (fleet.ranges.vibration_mm_s); fix the "
-            "value, or declare the range under [fleet.ranges] as vibration_mm_s = [low, high]"]]
+            "value, or widen the range under [fleet.ranges] as vibration_mm_s = [low, high]"]]
 
 
 def test_range_for_an_unknown_column_is_a_config_error(tmp_path):
@@ -347,6 +347,16 @@ def test_range_rules_from_column_names():
     assert plausible_range("rated_kw", {}).low == 0 and plausible_range("motor_current_a", {}).low == 0
     assert plausible_range("bearing_temp_c", {}).low == -MAGNITUDE  # temperatures may be below zero
     assert plausible_range("suction_bar", {}).low == -MAGNITUDE  # gauge pressure may be below zero
+    assert plausible_range("Fe ppm", {}).low == 0 and plausible_range("chloride_mg_l", {}).low == 0  # concentrations
+
+
+def test_range_hint_is_a_key_toml_reads():
+    import tomllib
+
+    from wearcast.io._ranges import toml_key
+
+    for column in ("vibration_mm_s", "Fe ppm", 'odd "name"'):
+        assert tomllib.loads(f"{toml_key(column)} = [0, 5]") == {column: [0, 5]}
 
 
 # -- 5. outputs are what the user expects on disk ------------------------------------------

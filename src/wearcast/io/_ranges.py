@@ -3,8 +3,8 @@ column can take before it is a typing slip, a placeholder or a unit mix-up.
 
 A range comes from ``fleet.ranges`` when the config declares one for the
 column; otherwise from the column's name when its unit makes the range plain
-(hours per day: 0 to 24; a power, a speed, a vibration level, a count: not
-negative); otherwise only the magnitude bound applies. Values beyond
+(hours per day: 0 to 24; a power, a speed, a vibration level, a count, a
+concentration in ppm or mg/l: not negative); otherwise only the magnitude bound applies. Values beyond
 ``MAGNITUDE`` (1e308 from an overflowed cell, 9.9e37 "no data" markers) are
 placeholders, not readings, in every column.
 """
@@ -30,7 +30,8 @@ _HOURS_PER_DAY = re.compile(r"(hours?|hrs?|h)_(per_)?day")
 #: and pressures are left out: both can be below zero on the scales exports use.
 _NON_NEGATIVE = re.compile(
     r"(^|_)(kw|kwh|mw|w|hp|kva|a|amps?|v|rpm|hz|mm_s|in_s|g|kg|t|tonnes?|mm|um|hours?|hrs?|h|days?|"
-    r"count|cycles?|starts?|trips?|vibration|power|speed|load|current|rated)(_|$)")
+    r"count|cycles?|starts?|trips?|vibration|power|speed|load|current|rated|"
+    r"ppm|ppb|mg_l|mg_kg|ug_l|concentration)(_|$)")
 
 
 @dataclass(frozen=True)
@@ -71,6 +72,11 @@ def plausible_range(column: str, ranges: dict[str, list[float]]) -> PlausibleRan
     if _NON_NEGATIVE.search(name):
         return PlausibleRange(0.0, MAGNITUDE, "cannot be negative")
     return PlausibleRange(-MAGNITUDE, MAGNITUDE, "larger values are placeholders, not readings")
+
+
+def toml_key(column: str) -> str:
+    """``column`` as a TOML key: bare when it can be, else quoted (``"Fe ppm"``)."""
+    return column if re.fullmatch(r"[A-Za-z0-9_-]+", column) else '"' + column.replace('"', '\\"') + '"'
 
 
 def outside(values: pd.Series, span: PlausibleRange) -> np.ndarray:

@@ -183,8 +183,9 @@ def _numbers(frame: pd.DataFrame, cols, q: Quarantine, config: Config, reason: s
         if plausible:
             span = _ranges.plausible_range(col, config.fleet.ranges)
             far = _ranges.outside(values, span) & ~bad
+            declare = "widen" if col in config.fleet.ranges else "declare"
             q.reject(frame, far, col, f"outside the plausible range of {col}: {span.describe()}; fix the value, "
-                                      f"or declare the range under [fleet.ranges] as {col} = [low, high]")
+                                      f"or {declare} the range under [fleet.ranges] as {_ranges.toml_key(col)} = [low, high]")
         frame[col] = values
 
 
