@@ -124,7 +124,7 @@ def fit_power_tail(
     """Fit the tail to rows (``entry``/``exit`` days, ``event`` bool, log risk
     ``eta`` and case ``weights``, all shape (n,)). ``anchor``, the age from
     which the curve replaces the step estimate, defaults to the age of the
-    :data:`SPARSE_END_FAILURES`-th oldest failure (the oldest one in a fleet
+    :data:`SPARSE_END_FAILURES`-th oldest failure (the youngest one in a fleet
     with fewer). Returns :data:`NO_TAIL` without failures."""
     entry = np.asarray(entry, float).ravel()
     exit = np.asarray(exit, float).ravel()

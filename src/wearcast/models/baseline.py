@@ -36,6 +36,18 @@ def _labels(strata, shape) -> np.ndarray:
     return np.broadcast_to(np.asarray(strata).astype(str), shape)
 
 
+def _rows(entry, exit, event, eta, weights, strata):
+    """The rows as flat arrays: ages, events, scores (default 0), weights (default 1), stratum labels."""
+    entry = np.asarray(entry, float).ravel()
+    exit = np.asarray(exit, float).ravel()
+    event = np.asarray(event, bool).ravel()
+    n = exit.size
+    eta = np.zeros(n) if eta is None else np.asarray(eta, float).ravel()
+    weights = np.ones(n) if weights is None else np.asarray(weights, float).ravel()
+    labels = np.full(n, _SINGLE) if strata is None else _labels(strata, (n,))
+    return entry, exit, event, eta, weights, labels
+
+
 @dataclass
 class BaselineHazard:
     """Per-stratum step functions ``H0``: ``ages[s]`` (k,) days and ``cumhaz[s]`` (k,).
@@ -102,13 +114,8 @@ class BaselineHazard:
         ties = self.ties if ties is None else ties
         if ties not in ("breslow", "efron"):
             raise ValueError(f"ties must be 'breslow' or 'efron'; got {ties!r}")
-        entry = np.asarray(entry, float).ravel()
-        exit = np.asarray(exit, float).ravel()
-        event = np.asarray(event, bool).ravel()
+        entry, exit, event, eta, weights, labels = _rows(entry, exit, event, eta, weights, strata)
         n = exit.size
-        eta = np.zeros(n) if eta is None else np.asarray(eta, float).ravel()
-        weights = np.ones(n) if weights is None else np.asarray(weights, float).ravel()
-        labels = np.full(n, _SINGLE) if strata is None else _labels(strata, (n,))
         self.ages, self.cumhaz, self.ties = {}, {}, ties
         if ties == "breslow":
             # Shift before exp so large scores cannot overflow; undo on the hazard.
@@ -124,18 +131,12 @@ class BaselineHazard:
         else:
             rs = prepare_risk_sets(entry, exit, event, strata=labels, weights=weights, ties="efron")
             self._set_from_risk_sets(rs, eta, [str(label) for label in rs.stratum_labels])
-        return self.fit_tails(entry, exit, event, eta, weights=weights, strata=None if strata is None else labels)
+        return self.fit_tails(entry, exit, event, eta, weights=weights, strata=labels)
 
     def fit_tails(self, entry, exit, event, eta=None, *, weights=None, strata=None) -> "BaselineHazard":
         """Fit each stratum's tail past its last failure age (:func:`fit_power_tail`)
         on the same rows and scores as the steps; returns self."""
-        entry = np.asarray(entry, float).ravel()
-        exit = np.asarray(exit, float).ravel()
-        event = np.asarray(event, bool).ravel()
-        n = exit.size
-        eta = np.zeros(n) if eta is None else np.asarray(eta, float).ravel()
-        weights = np.ones(n) if weights is None else np.asarray(weights, float).ravel()
-        labels = np.full(n, _SINGLE) if strata is None else _labels(strata, (n,))
+        entry, exit, event, eta, weights, labels = _rows(entry, exit, event, eta, weights, strata)
         self.tails = {}
         for label in np.unique(labels):
             keep = labels == label
