@@ -187,6 +187,20 @@ def test_timestamps_with_utc_offsets_read_as_their_calendar_date(tmp_path):
     assert result.rows_quarantined == 0
     exits = result.table.frame.loc[result.table.frame["failed"], "exit_date"]
     assert sorted(exits.dt.strftime("%Y-%m-%d")) == ["2024-05-04"] * 3
+    # the time of day is dropped: ages are whole days, as for dates written without a time
+    assert (exits == exits.dt.normalize()).all()
+    ages = result.table.frame["exit_age"]
+    assert (ages == ages.round()).all()
+
+
+def test_an_event_late_on_the_decommission_date_is_not_after_it(tmp_path):
+    # Found trying a re-exported work-order log: a decommission logged at 23:30 on the day the
+    # register gives as the unit's decommission date was quarantined as "dated after decommission".
+    cfg = _register_events(tmp_path, ["PU-1,2022-01-10,2024-05-04", "PU-2,2022-03-01,"],
+                           ["PU-1,2024-05-04T23:30:00Z,decommission", "PU-2,2024-06-01 14:05,failure"],
+                           register_header="unit_id,install_date,decommission_date")
+    result = load_export(cfg)
+    assert result.rows_quarantined == 0, result.quarantine.to_dict("records")
 
 
 def test_not_a_calendar_date_is_called_so(tmp_path):

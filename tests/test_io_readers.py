@@ -106,7 +106,9 @@ def test_dates_parse_iso_day_first_and_explicit_format():
     parsed, bad = _parse.parse_dates(pd.Series(["2021-02-28", "2021-02-30", "", "28.02.2021 13:30", "soon"]),
                                      day_first=True)
     assert bad.tolist() == [False, True, False, False, True]
-    assert parsed[3] == pd.Timestamp("2021-02-28 13:30")
+    assert parsed[3] == pd.Timestamp("2021-02-28")  # the time of day is dropped: a calendar date
+    parsed, _ = _parse.parse_dates(pd.Series(["28/02/2021 13:30"]), date_format="%d/%m/%Y %H:%M")
+    assert parsed[0] == pd.Timestamp("2021-02-28")
     parsed, bad = _parse.parse_dates(pd.Series(["02/28/21"]), date_format="%m/%d/%y")
     assert parsed[0] == pd.Timestamp("2021-02-28") and not bad.any()
 

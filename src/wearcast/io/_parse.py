@@ -29,7 +29,8 @@ import pandas as pd
 from wearcast.exceptions import DataError
 
 # A time may end in a UTC offset (``Z``, ``+02:00``, ``-0500``): the date is read as written
-# (the calendar date where the record was made), the offset is not applied.
+# (the calendar date where the record was made), the offset is not applied, and the time of
+# day is dropped (every date is a calendar date, as in the register).
 _OFFSET = r"(?:\s*(?:Z|[+-]\d{2}(?::?\d{2})?))?"
 _ISO = re.compile(r"^(\d{4})[-/](\d{1,2})[-/](\d{1,2})(?:[ T](\d{1,2}):(\d{2})(?::(\d{2})(?:\.\d+)?)?"
                   + _OFFSET + r")?$")
@@ -201,9 +202,13 @@ def day_first_from_values(samples: list[DateSample]) -> bool | None:
 
 def parse_dates(values: pd.Series, *, date_format: str | None = None,
                 day_first: bool | None = None) -> tuple[pd.Series, np.ndarray]:
-    """Dates from text; empty cells are NaT (not bad). Returns (datetime64[ns], bad mask)."""
+    """Dates from text; empty cells are NaT (not bad). Returns (datetime64[ns], bad mask).
+
+    Every date is a calendar date: a time of day (however the format writes it) is dropped.
+    """
     codes, uniques = distinct(values)
     dates, bad = _parse_dates(uniques, date_format, day_first)
+    dates = dates.dt.normalize()
     return _spread(dates, codes, values.index), bad[codes]
 
 
@@ -237,11 +242,9 @@ def _parse_free(text: pd.Series, day_first: bool | None, iso_only: bool = False)
         day_part, month_part = num[2], num[0]
     month = pd.to_numeric(iso[1], errors="coerce").fillna(pd.to_numeric(month_part, errors="coerce"))
     day = pd.to_numeric(iso[2], errors="coerce").fillna(pd.to_numeric(day_part, errors="coerce"))
-    hour = pd.to_numeric(iso[3], errors="coerce").fillna(pd.to_numeric(num[4], errors="coerce")).fillna(0)
-    minute = pd.to_numeric(iso[4], errors="coerce").fillna(pd.to_numeric(num[5], errors="coerce")).fillna(0)
-    second = pd.to_numeric(iso[5], errors="coerce").fillna(pd.to_numeric(num[6], errors="coerce")).fillna(0)
-    parts = pd.DataFrame({"year": year, "month": month, "day": day, "hour": hour,
-                          "minute": minute, "second": second})
+    # A time of day is dropped: registers write dates only, so an event at 23:30 on a unit's
+    # decommission date would otherwise read as after it, and ages stay whole days.
+    parts = pd.DataFrame({"year": year, "month": month, "day": day})
     ok = parts[["year", "month", "day"]].notna().all(axis=1)
     parsed = pd.Series(pd.NaT, index=text.index, dtype="datetime64[ns]")
     if ok.any():
