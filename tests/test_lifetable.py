@@ -252,3 +252,23 @@ def test_large_all_in_service_table_warns(tmp_path):
     assert load_export(_config(tmp_path)).warnings == ()
     _ages_export(tmp_path, 250, retired={7: "1"})
     assert load_export(_config(tmp_path)).warnings == ()
+
+
+def test_messages_name_the_unit_and_print_values_plainly():
+    # A library user's frame with a bad cell: the message names the row and its unit and prints the
+    # value as a person writes it (no Python repr such as np.float64(nan)).
+    import re
+
+    from wearcast.exceptions import DataError
+    from wearcast.lifetable import LifeTable
+
+    bad_age = pd.DataFrame({"unit_id": ["GB-01", "GB-02"], "entry_age": [0.0, 5.0], "exit_age": [3.0, np.nan],
+                            "failed": [0, 1]})
+    with pytest.raises(DataError, match=re.escape("row 1 (unit GB-02): column exit_age is not a finite number (empty)")):
+        LifeTable.from_frame(bad_age)
+    bad_cov = bad_age.assign(exit_age=[3.0, 9.5], oil_fe_ppm=[12.5, "n/a"])
+    with pytest.raises(DataError, match=re.escape("row 1 (unit GB-02): covariate oil_fe_ppm is not numeric (n/a)")):
+        LifeTable.from_frame(bad_cov, ["oil_fe_ppm"])
+    backwards = bad_age.assign(exit_age=[3.0, np.float64(4.5)])
+    with pytest.raises(DataError, match=re.escape("exit_age 4.5 is not after entry_age 5;")):
+        LifeTable.from_frame(backwards)

@@ -50,6 +50,20 @@ def draw_unit_weights(codes: np.ndarray, rng: np.random.Generator) -> tuple[np.n
     return rows, row_counts[rows].astype(float)
 
 
+def _where(frame: pd.DataFrame, row: int) -> str:
+    """``row 12 (unit P-0042)``: the row as a person finds it in the table."""
+    return f"row {row} (unit {frame['unit_id'].iloc[row]})" if "unit_id" in frame.columns else f"row {row}"
+
+
+def _plain(value) -> str:
+    """A value as a person writes it (``12.5``, ``abc``, ``empty``), never a Python repr."""
+    if value is None or (isinstance(value, float) and np.isnan(value)) or value is pd.NA:
+        return "empty"
+    if isinstance(value, (float, np.floating)):
+        return f"{float(value):g}"
+    return str(value.item() if isinstance(value, np.generic) else value)
+
+
 def check_life_table(
     frame: pd.DataFrame,
     covariates: Sequence[str] = (),
@@ -87,7 +101,8 @@ def check_life_table(
         if bad.any():
             row = int(np.flatnonzero(bad)[0])
             raise DataError(
-                f"{source}: row {row}: column {col} is not a finite number ({frame[col].iloc[row]!r}). "
+                f"{source}: {_where(out, row)}: column {col} is not a finite number "
+                f"({_plain(frame[col].iloc[row])}). "
                 "Ages must be numbers of days."
             )
         out[col] = values
@@ -96,18 +111,21 @@ def check_life_table(
         if not failed.isin([0, 1, True, False]).all():
             row = int(np.flatnonzero(~failed.isin([0, 1, True, False]).to_numpy())[0])
             raise DataError(
-                f"{source}: row {row}: column failed is {failed.iloc[row]!r}; use 0/1 or true/false."
+                f"{source}: {_where(out, row)}: column failed is {_plain(failed.iloc[row])}; "
+                "use 0/1 or true/false."
             )
         out["failed"] = failed.astype(bool)
     entry = out["entry_age"].to_numpy()
     exit_ = out["exit_age"].to_numpy()
     if (entry < 0).any():
         row = int(np.flatnonzero(entry < 0)[0])
-        raise DataError(f"{source}: row {row}: entry_age {entry[row]} is negative; ages start at 0.")
+        raise DataError(f"{source}: {_where(out, row)}: entry_age {_plain(entry[row])} is negative; "
+                        "ages start at 0.")
     if (exit_ <= entry).any():
         row = int(np.flatnonzero(exit_ <= entry)[0])
         raise DataError(
-            f"{source}: row {row}: exit_age {exit_[row]} is not after entry_age {entry[row]}; "
+            f"{source}: {_where(out, row)}: exit_age {_plain(exit_[row])} is not after entry_age "
+            f"{_plain(entry[row])}; "
             "every interval must have a positive length."
         )
     categorical = list(categorical)
@@ -122,7 +140,7 @@ def check_life_table(
         if bad.any():
             row = int(np.flatnonzero(bad.to_numpy())[0])
             raise DataError(
-                f"{source}: row {row}: covariate {col} is not numeric ({out[col].iloc[row]!r}). "
+                f"{source}: {_where(out, row)}: covariate {col} is not numeric ({_plain(out[col].iloc[row])}). "
                 "Declare it under categorical in the config if it is a category."
             )
         out[col] = values.astype(float)
