@@ -14,6 +14,14 @@ covariates as they are, categoricals one-hot with the first level dropped) and
 returns ``exp(eta)`` (lifelines' ``predict_partial_hazard``), and
 ``H(a | x) = H0(a) exp(eta)``. Nothing is standardised by wearcast (lifelines
 standardises internally and reports coefficients on the original scale).
+
+Missing values (a unit with no reading yet): a missing or non-finite value is
+scored at the fleet average of its design column(s), i.e. ``z_j = mean_j``,
+so that covariate adds nothing to the unit's log relative risk (its driver is
+0). While fitting, ``mean_j`` is the mean over the rows that have a value and
+missing rows are filled with it before lifelines sees the design; a missing
+category gets each level column's share. The model never stops for them.
+
 """
 
 from __future__ import annotations
@@ -66,14 +74,15 @@ class CoxBaseline(SurvivalModel):
     # -- design ---------------------------------------------------------------
     def _encode(self, X: pd.DataFrame, *, learn: bool) -> np.ndarray:
         """Design matrix (n, p) in covariate order: numbers as they are, a categorical as one
-        0/1 column per level except the first (the reference)."""
+        0/1 column per level except the first (the reference). Missing values are filled
+        with the column's fleet average (learned here when ``learn``, else ``self.means``)."""
         missing = [c for c in self.covariates if c not in X.columns]
         if missing:
             raise ModelError(
                 f"cox: covariate column(s) {', '.join(missing)} missing from the data to score; "
                 f"the model was fitted with {', '.join(self.covariates)}."
             )
-        blocks, names = [], []
+        blocks, names, gaps = [], [], []
         for col in self.covariates:
             values = X[col]
             if col in self.levels:
@@ -90,20 +99,22 @@ class CoxBaseline(SurvivalModel):
                 for level in self.levels[col][1:]:
                     blocks.append((text == level).astype(float))
                     names.append(f"{col}={level}")
+                    gaps.append(bad)
             else:
                 numeric = pd.to_numeric(values, errors="coerce").to_numpy(float)
                 blocks.append(numeric)
                 names.append(col)
-                bad = ~np.isfinite(numeric)
-            if bad.any():
-                row = int(np.flatnonzero(bad)[0])
-                raise ModelError(
-                    f"cox: row {row}: covariate {col} is missing or not a number ({values.iloc[row]!r}). "
-                    "Fill or drop such rows before fitting/scoring, or leave the covariate out."
-                )
+                gaps.append(~np.isfinite(numeric))
         if learn:
             self.design_columns = names
-        return np.column_stack(blocks) if blocks else np.zeros((len(X), 0))
+        if not blocks:
+            return np.zeros((len(X), 0))
+        Z = np.column_stack(blocks)
+        gap = np.column_stack(gaps)
+        if gap.any():
+            fill = _observed_means(Z, gap) if learn else self.means
+            Z = np.where(gap, fill[None, :], Z)
+        return Z
 
     def _learn_levels(self, X: pd.DataFrame, categorical) -> None:
         """Remember each categorical covariate's levels that occur in the data
@@ -291,3 +302,11 @@ class CoxBaseline(SurvivalModel):
         except json.JSONDecodeError as exc:
             raise BundleError(f"{path}: line {exc.lineno}: not valid JSON ({exc.msg}). Refit and save it again.") from exc
         return cls.from_dict(data)
+
+
+def _observed_means(Z: np.ndarray, gap: np.ndarray) -> np.ndarray:
+    """Mean of each column of ``Z`` (n, p) over the rows where ``gap`` (n, p) is False;
+    0 for a column with no value at all (it is then constant and gets coefficient 0)."""
+    counts = (~gap).sum(axis=0)
+    sums = np.where(gap, 0.0, Z).sum(axis=0)
+    return np.divide(sums, counts, out=np.zeros(Z.shape[1]), where=counts > 0)
