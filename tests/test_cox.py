@@ -245,3 +245,56 @@ def test_missing_category_gets_the_level_shares(rossi):
     assert (contrib.loc[[3, 40], "wexp_level"] == 0).all()
     assert np.isfinite(model.risk_score(table.X)).all()
 
+
+def _rossi_with(extra: pd.Series, name: str = "z") -> LifeTable:
+    from lifelines.datasets import load_rossi
+
+    data = load_rossi()
+    frame = data[ROSSI_COLS].astype(float).assign(**{name: extra.astype(float)})
+    frame["unit_id"] = [f"u{i}" for i in range(len(data))]
+    frame["entry_age"], frame["exit_age"], frame["failed"] = 0.0, data["week"].astype(float), data["arrest"].astype(bool)
+    return LifeTable.from_frame(frame, ROSSI_COLS + [name])
+
+
+@pytest.mark.filterwarnings("ignore:Column prio_typed have very low variance")
+def test_a_diverged_fit_is_retried_with_a_smaller_step():
+    # Rossi (lifelines) with one badly scaled prio value (1e6 prior convictions, a typing
+    # slip): lifelines' default Newton steps do not converge. The retry must give
+    # lifelines' properly converged fit (the same data, step size 0.2, no warning).
+    from lifelines import CoxPHFitter
+    from lifelines.exceptions import ConvergenceWarning
+
+    from lifelines.datasets import load_rossi
+
+    data = load_rossi()
+    bad_prio = data["prio"].astype(float).copy()
+    bad_prio.iloc[0] = 1e6
+    table = _rossi_with(bad_prio, "prio_typed")
+    cols = ROSSI_COLS + ["prio_typed"]
+    frame = data[ROSSI_COLS].astype(float).assign(prio_typed=bad_prio, week=data["week"], arrest=data["arrest"])
+    with pytest.warns(ConvergenceWarning, match="failed to converge"):
+        diverged = CoxPHFitter(penalizer=0.01).fit(frame, "week", "arrest", fit_options={"precision": 1e-10})
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", ConvergenceWarning)
+        converged = CoxPHFitter(penalizer=0.01).fit(frame, "week", "arrest",
+                                                     fit_options={"precision": 1e-10, "step_size": 0.2})
+    assert diverged.log_likelihood_ < converged.log_likelihood_ - 500  # the fixture does diverge
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", ConvergenceWarning)
+        model = CoxBaseline().fit(table)
+    assert model.log_likelihood == pytest.approx(converged.log_likelihood_, abs=1e-6)
+    np.testing.assert_allclose(model.coefficients, converged.params_[cols].to_numpy(), atol=1e-6)
+
+
+def test_a_fit_that_never_converges_is_refused():
+    # Complete separation: an indicator equal to "arrested" (Rossi, lifelines) has no finite
+    # maximum without a penalty; lifelines warns at every step size. Its coefficients must
+    # not be kept.
+    from lifelines.datasets import load_rossi
+
+    from wearcast.exceptions import CoxConvergenceError
+
+    data = load_rossi()
+    table = _rossi_with(data["arrest"], "arrested")
+    with pytest.raises(CoxConvergenceError, match="did not converge.*0.95.*0.2"):
+        CoxBaseline(penalizer=0.0).fit(table)
