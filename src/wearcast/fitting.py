@@ -237,8 +237,7 @@ def fit_warnings(choice: Choice, failed: dict[str, str], missing: dict) -> list[
            for name, reason in failed.items()]
     table = choice.candidates
     if "eligible" in table.columns and not table["eligible"].fillna(False).astype(bool).any():
-        out.append(f"No model passed the calibration check, so {choice.name} is a fallback: "
-                   f"{choice.reason[0].upper()}{choice.reason[1:]}")
+        out.append(f"{choice.reason[0].upper()}{choice.reason[1:]}")  # says it is a fallback, and which
     c = table["c_mean"].get(choice.name) if "c_mean" in table.columns else None
     if c is not None and np.isfinite(c) and c < 0.5:
         out.append(f"The chosen model {choice.name} ranks held-out units worse than chance (cross-validated "
