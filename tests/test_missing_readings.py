@@ -81,3 +81,13 @@ def test_backtest_scores_a_unit_without_reading_at_the_origin(tmp_path):
     cli = CliRunner().invoke(main, ["backtest", str(config_path), "--as-of", "2025-08-31", "--horizon", "90d",
                                     "--out", str(tmp_path / "bt")])
     assert cli.exit_code == 0, cli.output
+
+
+def test_monthly_run_scores_the_unit_and_prints_the_warning(fleet):
+    result = CliRunner().invoke(main, ["monthly", str(fleet), "--jobs", "1"])
+    assert result.exit_code == 0, result.output
+    assert "decision: first run" in result.output
+    assert "warning: 1 unit(s) in service have no value yet" in result.output
+    run_dir = next((fleet.parent / "wearcast-output" / "runs").iterdir())
+    ranked = pd.read_csv(run_dir / "ranked_units.csv", dtype={"unit_id": str}).set_index("unit_id")
+    assert 0 <= ranked.loc[NEW_UNIT, "p_fail_365d"] <= 1
