@@ -159,3 +159,21 @@ def test_units_with_missing_values_are_counted_and_scored(tmp_path):
     for model in outcome.models.values():
         p = model.fail_probabilities(table.X.iloc[free], table.exit[free], [20])
         assert np.isfinite(p).all() and ((p >= 0) & (p <= 1)).all()
+
+
+def test_fallback_and_worse_than_chance_are_warned_in_plain_words():
+    # The wording rule on the selection's own output (wearcast.selection.choose): a fallback
+    # (no candidate within the calibration share) and a chosen C below 0.5 are each one
+    # warning; a calibrated choice above 0.5 with nothing missing gives none.
+    from wearcast.fitting import fit_warnings
+    from wearcast.selection import choose
+
+    none_missing = {"units": 0, "by_covariate": {}, "examples": []}
+    summary = pd.DataFrame({"c_mean": [0.47, 0.46], "c_se": [0.01, 0.01], "expected_failures": [20.0, 30.0],
+                            "observed_failures": [10.0, 10.0]}, index=["cox", "boosted_d1"])
+    said = fit_warnings(choose(summary), {}, none_missing)
+    assert len(said) == 2
+    assert said[0].startswith("No candidate's expected failure count was within 25% of the observed; chose cox")
+    assert said[1].startswith("The chosen model cox ranks held-out units worse than chance (cross-validated C 0.470")
+    calibrated = summary.assign(c_mean=[0.62, 0.60], expected_failures=[10.5, 11.0])
+    assert fit_warnings(choose(calibrated), {}, none_missing) == []
