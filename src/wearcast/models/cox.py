@@ -198,8 +198,8 @@ class CoxBaseline(SurvivalModel):
         if second[1] is None:
             return second[0]
         raise CoxConvergenceError(
-            f"cox: lifelines' fit did not converge, at step size {FIRST_STEP_SIZE:g} nor at "
-            f"{RETRY_STEP_SIZE:g} ({second[1]}); its coefficients are not used. Look for a covariate "
+            f"cox: lifelines' fit did not converge at step size {FIRST_STEP_SIZE:g}, nor when retried at "
+            f"{RETRY_STEP_SIZE:g} (lifelines: {second[1]}); its coefficients are not used. Look for a covariate "
             f"among {', '.join(names)} with extreme values or one that nearly separates failed from "
             f"running units, or use a larger penalizer (now {self.penalizer:g})."
         )
@@ -233,7 +233,7 @@ class CoxBaseline(SurvivalModel):
                 f"Try a larger penalizer (now {self.penalizer}) or drop nearly collinear covariates "
                 f"among {', '.join(names)}."
             ) from exc
-        reasons = [str(w.message).split(".")[0].strip() for w in caught
+        reasons = [str(w.message).split(". ")[0].strip().rstrip(".") for w in caught
                    if issubclass(w.category, ConvergenceWarning)
                    and any(key in str(w.message) for key in _NOT_CONVERGED)]
         for w in caught:  # pass on what lifelines said besides convergence
