@@ -382,3 +382,30 @@ def test_category_codes_match_the_text_path():
     b = encode_covariates(as_category, ("maker", "x"), levels)
     np.testing.assert_array_equal(a, b)
     assert np.isnan(a[1, 0]) and np.isnan(a[3, 0]) and a[0, 0] == 2.0
+
+
+def test_missing_values_take_lightgbm_branch_or_the_training_median(tmp_path, rossi):
+    # Reference: LightGBM itself. Without a missing value in training, LightGBM reads a NaN
+    # at scoring as 0 (checked here on its raw booster), which would score a unit with no
+    # reading as one with no prior convictions; wearcast fills it with the training median.
+    # With missing values in training, NaN takes LightGBM's learned branch unchanged.
+    frame, table = rossi
+    model = BoostedSurvivalTrees(_fixed(n_trees=30), seed=3).fit(table)
+    assert model.fill_values_ == {c: float(np.median(frame[c])) for c in ROSSI_COVARIATES}
+    X = table.X.iloc[:5]
+    gap = X.assign(prio=np.nan)
+    raw = encode_covariates(gap, tuple(ROSSI_COVARIATES), {})
+    as_zero = encode_covariates(X.assign(prio=0.0), tuple(ROSSI_COVARIATES), {})
+    np.testing.assert_array_equal(model.booster_.predict(raw, raw_score=True),
+                                  model.booster_.predict(as_zero, raw_score=True))
+    np.testing.assert_array_equal(model.log_risk(gap), model.log_risk(X.assign(prio=float(np.median(frame["prio"])))))
+    model.save(tmp_path)
+    loaded = BoostedSurvivalTrees.load(tmp_path)
+    np.testing.assert_array_equal(loaded.log_risk(gap), model.log_risk(gap))
+
+    holes = frame.assign(unit_id=np.arange(len(frame)), entry_age=0.0, exit_age=frame["week"].astype(float),
+                         failed=frame["arrest"], prio=frame["prio"].astype(float).where(np.arange(len(frame)) % 5 > 0))
+    with_gaps = BoostedSurvivalTrees(_fixed(n_trees=30), seed=3).fit(LifeTable.from_frame(holes, ROSSI_COVARIATES))
+    assert "prio" not in with_gaps.fill_values_
+    M = encode_covariates(gap, tuple(ROSSI_COVARIATES), {})
+    np.testing.assert_array_equal(with_gaps.log_risk(gap), with_gaps.booster_.predict(M, raw_score=True))

@@ -208,3 +208,97 @@ def test_no_covariates_gives_nelson_aalen_with_entry():
     np.testing.assert_allclose(model.cumulative_hazard_at(X, times), naf.cumulative_hazard_.loc[times].iloc[:, 0],
                                rtol=1e-12)
     assert_valid_probability(model.fail_probability(X, times, 1.0))
+
+
+def test_missing_values_are_scored_at_the_fleet_average(rossi):
+    # Rule (docs/models.md): a missing value is filled with the mean of the rows that
+    # have one, so it adds 0 to the log relative risk. Reference: lifelines
+    # CoxPHFitter on the Rossi data lifelines ships, with the same rows filled by hand.
+    from lifelines import CoxPHFitter
+
+    frame = rossi.frame.copy()
+    gone = np.arange(0, len(frame), 9)  # every ninth released prisoner has no prio record
+    frame.loc[gone, "prio"] = np.nan
+    table = LifeTable.from_frame(frame, ROSSI_COLS)
+    model = CoxBaseline(penalizer=0.0).fit(table)
+    by_hand = frame.assign(prio=frame["prio"].fillna(frame["prio"].mean()))
+    reference = CoxPHFitter().fit(by_hand[ROSSI_COLS].assign(week=by_hand["exit_age"], arrest=by_hand["failed"]),
+                                  "week", "arrest")
+    np.testing.assert_allclose(model.coefficients, reference.params_[ROSSI_COLS].to_numpy(), atol=1e-4)
+    # the missing rows' prio term is exactly 0, and they are scored as by hand
+    contrib = model.contributions(table.X)
+    assert (contrib.loc[gone, "prio"] == 0).all() and (contrib.drop(index=gone)["prio"] != 0).any()
+    np.testing.assert_allclose(model.log_risk(table.X), model.log_risk(by_hand[ROSSI_COLS]), atol=1e-12)
+    # a unit missing a value only at scoring time is scored at the training mean as well
+    full = CoxBaseline(penalizer=0.0).fit(rossi)
+    one = rossi.X.iloc[[0]].assign(prio=np.nan)
+    at_mean = rossi.X.iloc[[0]].assign(prio=rossi.frame["prio"].mean())
+    assert full.log_risk(one)[0] == pytest.approx(full.log_risk(at_mean)[0], abs=1e-12)
+    p = full.fail_probabilities(one, np.array([10.0]), [20])
+    assert np.isfinite(p).all() and 0 < p[0, 0] < 1
+
+
+def test_missing_category_gets_the_level_shares(rossi):
+    # A missing category: each level column is filled with its share, so the term is 0.
+    frame = rossi.frame.assign(wexp_level=np.where(rossi.frame["wexp"] == 1, "yes", "no")).astype({"wexp_level": object})
+    frame.loc[[3, 40], "wexp_level"] = None
+    cols = [c for c in ROSSI_COLS if c != "wexp"] + ["wexp_level"]
+    table = LifeTable.from_frame(frame, cols, ["wexp_level"])
+    model = CoxBaseline().fit(table)
+    contrib = model.contributions(table.X)
+    assert (contrib.loc[[3, 40], "wexp_level"] == 0).all()
+    assert np.isfinite(model.risk_score(table.X)).all()
+
+
+def _rossi_with(extra: pd.Series, name: str = "z") -> LifeTable:
+    from lifelines.datasets import load_rossi
+
+    data = load_rossi()
+    frame = data[ROSSI_COLS].astype(float).assign(**{name: extra.astype(float)})
+    frame["unit_id"] = [f"u{i}" for i in range(len(data))]
+    frame["entry_age"], frame["exit_age"], frame["failed"] = 0.0, data["week"].astype(float), data["arrest"].astype(bool)
+    return LifeTable.from_frame(frame, ROSSI_COLS + [name])
+
+
+@pytest.mark.filterwarnings("ignore:Column prio_typed have very low variance")
+def test_a_diverged_fit_is_retried_with_a_smaller_step():
+    # Rossi (lifelines) with one badly scaled prio value (1e6 prior convictions, a typing
+    # slip): lifelines' default Newton steps do not converge. The retry must give
+    # lifelines' properly converged fit (the same data, step size 0.2, no warning).
+    from lifelines import CoxPHFitter
+    from lifelines.exceptions import ConvergenceWarning
+
+    from lifelines.datasets import load_rossi
+
+    data = load_rossi()
+    bad_prio = data["prio"].astype(float).copy()
+    bad_prio.iloc[0] = 1e6
+    table = _rossi_with(bad_prio, "prio_typed")
+    cols = ROSSI_COLS + ["prio_typed"]
+    frame = data[ROSSI_COLS].astype(float).assign(prio_typed=bad_prio, week=data["week"], arrest=data["arrest"])
+    with pytest.warns(ConvergenceWarning, match="failed to converge"):
+        diverged = CoxPHFitter(penalizer=0.01).fit(frame, "week", "arrest", fit_options={"precision": 1e-10})
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", ConvergenceWarning)
+        converged = CoxPHFitter(penalizer=0.01).fit(frame, "week", "arrest",
+                                                     fit_options={"precision": 1e-10, "step_size": 0.2})
+    assert diverged.log_likelihood_ < converged.log_likelihood_ - 500  # the fixture does diverge
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", ConvergenceWarning)
+        model = CoxBaseline().fit(table)
+    assert model.log_likelihood == pytest.approx(converged.log_likelihood_, abs=1e-6)
+    np.testing.assert_allclose(model.coefficients, converged.params_[cols].to_numpy(), atol=1e-6)
+
+
+def test_a_fit_that_never_converges_is_refused():
+    # Complete separation: an indicator equal to "arrested" (Rossi, lifelines) has no finite
+    # maximum without a penalty; lifelines warns at every step size. Its coefficients must
+    # not be kept.
+    from lifelines.datasets import load_rossi
+
+    from wearcast.exceptions import CoxConvergenceError
+
+    data = load_rossi()
+    table = _rossi_with(data["arrest"], "arrested")
+    with pytest.raises(CoxConvergenceError, match="did not converge.*0.95.*0.2"):
+        CoxBaseline(penalizer=0.0).fit(table)

@@ -85,3 +85,95 @@ def test_choice_does_not_depend_on_thread_count(tmp_path):
         tables.append((folder / "out" / "candidates.csv").read_bytes())
     assert tables[0] == tables[1]
     assert len(pd.read_csv(tmp_path / "t1" / "out" / "candidates.csv")) == 2
+
+
+def _rossi_config(choose: str = "boosted_d1"):
+    from wearcast.config import BoostedSection, Config, ModelSection, ValidationSection
+
+    boosted = BoostedSection(max_trees=60, learning_rate=0.1, folds=3, early_stopping_trees=10)
+    return Config(model=ModelSection(fit=["boosted", "cox"], choose=choose, seed=3, boosted=boosted),
+                  validation=ValidationSection(folds=3, bootstrap=5, horizons_days=[20, 52], jobs=1))
+
+
+def _rossi_table(prio):
+    from lifelines.datasets import load_rossi
+
+    from wearcast.lifetable import LifeTable
+
+    data = load_rossi()
+    cols = ["fin", "age", "race", "wexp", "mar", "paro", "prio"]
+    frame = data[cols].astype(float).assign(prio=prio)
+    frame["unit_id"] = [f"u{i}" for i in range(len(data))]
+    frame["entry_age"], frame["exit_age"], frame["failed"] = 0.0, data["week"].astype(float), data["arrest"].astype(bool)
+    frame["in_service"] = ~frame["failed"]
+    return LifeTable.from_frame(frame, cols)
+
+
+def test_a_cox_fit_that_does_not_converge_is_marked_failed(tmp_path, monkeypatch):
+    # Rossi (lifelines) with one prio typed as 1e6: lifelines' Newton steps diverge at step
+    # size 0.95 (test_cox.py checks the retry at 0.2 repairs it). With the retry at 0.95
+    # too, the Cox fit cannot converge: the candidate is marked failed with the reason,
+    # never kept, and the run goes on with the others.
+    import numpy as np
+    from lifelines.datasets import load_rossi
+
+    import wearcast.models.cox as cox
+
+    monkeypatch.setattr(cox, "RETRY_STEP_SIZE", cox.FIRST_STEP_SIZE)
+    prio = load_rossi()["prio"].astype(float).to_numpy().copy()
+    prio[0] = 1e6
+    outcome = fit_models(_rossi_table(prio), _rossi_config(), tmp_path)
+    assert "cox" in outcome.failed and "cox" not in outcome.models
+    assert "did not converge" in outcome.failed["cox"]
+    candidates = pd.read_csv(tmp_path / "candidates.csv", keep_default_na=False)
+    row = candidates.set_index("candidate").loc["cox"]
+    assert "did not converge" in row["failed"] and row["c_mean"] == ""
+    assert candidates.set_index("candidate").loc["boosted_d1", "failed"] == ""
+    metrics = json.loads((tmp_path / "metrics.json").read_text())
+    assert any("cox model was left out" in w for w in metrics["warnings"])
+    assert np.isfinite(outcome.main_model.risk_score(_rossi_table(prio).X)).all()
+    # the same data with the retry as shipped: Cox converges and is kept
+    monkeypatch.undo()
+    kept = fit_models(_rossi_table(prio), _rossi_config(), tmp_path / "kept")
+    assert kept.failed == {} and "cox" in kept.models
+
+
+def test_units_with_missing_values_are_counted_and_scored(tmp_path):
+    # Rossi (lifelines): released prisoners still free at week 52 stand in for units in
+    # service; three of them have no prio record yet. The fit stage must run, count them
+    # and say so; every fitted model scores them.
+    import numpy as np
+    from lifelines.datasets import load_rossi
+
+    from wearcast.fitting import missing_values
+
+    data = load_rossi()
+    prio = data["prio"].astype(float).to_numpy().copy()
+    free = np.flatnonzero(data["arrest"].to_numpy() == 0)[:3]
+    prio[free] = np.nan
+    table = _rossi_table(prio)
+    counts = missing_values(table)
+    assert counts == {"units": 3, "by_covariate": {"prio": 3}, "examples": sorted(f"u{i}" for i in free)}
+    outcome = fit_models(table, _rossi_config("auto"), tmp_path)
+    assert any(w.startswith("3 unit(s) in service have no value yet for: prio (3)") for w in outcome.warnings)
+    for model in outcome.models.values():
+        p = model.fail_probabilities(table.X.iloc[free], table.exit[free], [20])
+        assert np.isfinite(p).all() and ((p >= 0) & (p <= 1)).all()
+
+
+def test_fallback_and_worse_than_chance_are_warned_in_plain_words():
+    # The wording rule on the selection's own output (wearcast.selection.choose): a fallback
+    # (no candidate within the calibration share) and a chosen C below 0.5 are each one
+    # warning; a calibrated choice above 0.5 with nothing missing gives none.
+    from wearcast.fitting import fit_warnings
+    from wearcast.selection import choose
+
+    none_missing = {"units": 0, "by_covariate": {}, "examples": []}
+    summary = pd.DataFrame({"c_mean": [0.47, 0.46], "c_se": [0.01, 0.01], "expected_failures": [20.0, 30.0],
+                            "observed_failures": [10.0, 10.0]}, index=["cox", "boosted_d1"])
+    said = fit_warnings(choose(summary), {}, none_missing)
+    assert len(said) == 2
+    assert said[0].startswith("No candidate's expected failure count was within 25% of the observed; chose cox")
+    assert said[1].startswith("The chosen model cox ranks held-out units worse than chance (cross-validated C 0.470")
+    calibrated = summary.assign(c_mean=[0.62, 0.60], expected_failures=[10.5, 11.0])
+    assert fit_warnings(choose(calibrated), {}, none_missing) == []

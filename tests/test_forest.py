@@ -576,3 +576,23 @@ def test_forest_hazard_is_linear_between_grid_ages():
     np.testing.assert_allclose(model.cumulative_hazard(X, [g[0] / 4])[:, 0], at_grid[:, 0] / 4, rtol=1e-6)
     # the per-unit path and the shared-grid path agree
     np.testing.assert_allclose(model.cumulative_hazard_at(X, np.full(7, mids[3])), model.cumulative_hazard(X, mids)[:, 3])
+def test_a_value_never_missing_in_training_goes_to_the_larger_side():
+    # Rule (docs/models.md), scikit-learn's: a split that saw no missing value while growing
+    # sends one to the child with more training rows; the flat tree keeps that side.
+    from wearcast.models._forest_grow import grow_on_points
+
+    table = _truncated_weibull(800, seed=5)
+    X = np.ascontiguousarray(table.X.to_numpy(np.float32))
+    residual = martingale_residuals(table.entry, table.exit, table.event)
+    tree, regressor, _ = grow_on_points(X, residual, np.ones(len(X)), table.event.astype(float),
+                                        max_features=None, max_depth=1, min_events=5, random_state=0)
+    assert tree.n_leaves == 2 and regressor.tree_.node_count == 3
+    rows = regressor.tree_.n_node_samples
+    assert bool(tree.missing_left[0]) == (rows[1] >= rows[2])
+    gap = X[:4].copy()
+    gap[:, tree.feature[0]] = np.nan
+    larger = tree.leaf[tree.left[0] if rows[1] >= rows[2] else tree.right[0]]
+    assert (apply_tree(tree, gap) == larger).all()
+    forest = SurvivalForest(n_trees=6, seed=2).fit(table)
+    p = forest.fail_probabilities(table.X.iloc[:4].assign(x=np.nan), table.exit[:4], [90, 365])
+    assert_valid_probability(p)

@@ -565,3 +565,22 @@ def test_b_lives_on_few_units_are_flagged(tmp_path):
     plain = ReportInputs(title="Few", as_of="2026-11-30", life_table=table, group_by="site", life_statistics=stats)
     assert "Read with care" not in " ".join(_parse(build_report(plain, tmp_path / "p")["report"].read_text(
         encoding="utf-8")).text)
+
+
+def test_run_warnings_come_first_in_plain_words(tmp_path):
+    # metrics.json "warnings" (wearcast.fitting.fit_warnings) are what the terminal printed;
+    # the page shows them, escaped, in a section above everything else.
+    _write_run_folder(tmp_path)
+    said = ["The cox model was left out: its fit did not converge (step size 0.95 and 0.2).",
+            "2 unit(s) in service have no value yet for: vibration_mm_s (2) <no reading>."]
+    _atomic.write_json(tmp_path / "metrics.json", {"warnings": said})
+    inputs = report_inputs_from_run_folder(tmp_path)
+    assert inputs.warnings == said
+    page, _ = render_report(inputs)
+    parsed = _parse(page)
+    assert parsed.sections[0] == "read-first"
+    block = page.split('id="run-warnings"')[1].split("</div>")[0]
+    assert "did not converge (step size 0.95 and 0.2)" in block and "&lt;no reading&gt;" in block
+    # a run without warnings has no such section
+    (tmp_path / "metrics.json").unlink()
+    assert "read-first" not in _parse(render_report(report_inputs_from_run_folder(tmp_path))[0]).sections

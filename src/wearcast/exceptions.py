@@ -60,6 +60,10 @@ class ModelError(WearcastError):
     exit_code = 65
 
 
+class CoxConvergenceError(ModelError):
+    """lifelines' Cox fit did not converge even with a smaller step; its coefficients are not kept."""
+
+
 class ChallengerRejected(WearcastError):
     """The monthly promotion gate kept the champion (outputs are still written)."""
 

@@ -15,6 +15,13 @@
    data and saves each as a bundle under ``models/<candidate>/``; writes the
    boosted cross-validation curve, the forest's out-of-bag curve and the
    drivers' overall importance when those models exist.
+
+A candidate whose fit cannot be trusted (today: a Cox fit that does not
+converge, :class:`wearcast.exceptions.CoxConvergenceError`) is left out and
+marked failed, with the reason, in the candidates table; the run goes on with
+the others. :func:`fit_warnings` words what the planner must know (a failed
+candidate, no candidate calibrated, a C below 0.5, units with missing values)
+for the terminal and the top of report.html.
 """
 
 from __future__ import annotations
@@ -29,7 +36,7 @@ from joblib import Parallel, delayed
 
 from wearcast import _atomic
 from wearcast.config import Config
-from wearcast.exceptions import ConfigError
+from wearcast.exceptions import ConfigError, CoxConvergenceError
 from wearcast.lifetable import LifeTable
 from wearcast.metrics import horizon_calibration
 from wearcast.models.base import SurvivalModel
@@ -99,6 +106,9 @@ class FitOutcome:
     models: dict[str, SurvivalModel]
     comparison: pd.DataFrame
     files: dict[str, str] = field(default_factory=dict)
+    failed: dict[str, str] = field(default_factory=dict)  # candidate -> why it was left out
+    missing: dict = field(default_factory=dict)  # missing_values(table)
+    warnings: list[str] = field(default_factory=list)  # fit_warnings(...), plain words
 
     @property
     def main_model(self) -> SurvivalModel:
@@ -122,8 +132,17 @@ def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | N
     candidates = {name: make_model(name, config, seed, inner_folds=SELECTION_INNER_FOLDS) for name in names}
 
     horizons = sorted({int(h) for h in config.validation.horizons_days})
-    cv = cross_validate(candidates, table, k=config.validation.folds, seed=cv_seed, horizons_days=horizons,
-                        jobs=config.validation.jobs)
+    failed: dict[str, str] = {}
+    while True:
+        try:
+            cv = cross_validate(candidates, table, k=config.validation.folds, seed=cv_seed, horizons_days=horizons,
+                                jobs=config.validation.jobs)
+            break
+        except CoxConvergenceError as exc:
+            if "cox" not in candidates or len(candidates) == 1 or pin == "cox":
+                raise
+            failed["cox"] = f"fit did not converge in a cross-validation fold: {_reason(exc)}"
+            candidates = {k: v for k, v in candidates.items() if k != "cox"}
     summary = cv.summary.set_index("model")
     main_h = max(horizons)
     choice_input = pd.DataFrame({
@@ -136,32 +155,99 @@ def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | N
         choice = choose(choice_input, calibration_share=config.validation.calibration_share, note=note)
     else:
         choice = pinned(pin, choice_input)
+    choice = _with_failed(choice, failed)
+    missing = missing_values(table)
 
     resampled = None if config.validation.bootstrap_metrics == "all" else ("c_harrell", "c_truncation")
     comparison = compare_models(cv, bootstrap=config.validation.bootstrap, seed=compare_seed,
                                 resampled_columns=resampled, jobs=config.validation.jobs)
     calibration = _calibration(cv, [choice.name, "cox"], main_h)
-    extra = {"choice": as_dict(choice), "calibration": calibration.to_dict(orient="records")}
-    files: dict[str, str] = {path.stem: str(path) for path in write_comparison(cv, out_dir, comparison, extra)}
-    files["candidates"] = str(_atomic.write_csv(out_dir / "candidates.csv",
-                                                choice.candidates.reset_index(names="candidate")))
-    files["calibration"] = str(_atomic.write_csv(out_dir / "calibration.csv", calibration))
-
     to_fit = list(dict.fromkeys([choice.name, *config_model_names(config)]))
     fit_seeds = np.random.default_rng(fit_seed).integers(0, 2**31 - 1, size=len(to_fit))
     golden = golden_rows(table)
     n_jobs = -1 if config.validation.jobs == 0 else max(1, config.validation.jobs)
     models = [make_model(name, config, int(s)) for name, s in zip(to_fit, fit_seeds)]
     if n_jobs == 1 or len(models) == 1:
-        done = [m.fit(table) for m in models]
+        done = [_fit(m, table) for m in models]
     else:
         done = Parallel(n_jobs=n_jobs)(delayed(_fit)(m, table) for m in models)
-    fitted: dict[str, SurvivalModel] = dict(zip(to_fit, done))
+    fitted: dict[str, SurvivalModel] = {}
+    for name, (model, error) in zip(to_fit, done):
+        if error is None:
+            fitted[name] = model
+        elif name == choice.name or not isinstance(error, CoxConvergenceError):
+            raise error
+        else:
+            failed.setdefault(name, f"final fit on all units did not converge: {_reason(error)}")
+    choice = _with_failed(choice, failed)
+    warnings = fit_warnings(choice, failed, missing)
+    extra = {"choice": as_dict(choice), "calibration": calibration.to_dict(orient="records"),
+             "failed_candidates": dict(failed), "missing_values": missing, "warnings": warnings}
+    files: dict[str, str] = {path.stem: str(path) for path in write_comparison(cv, out_dir, comparison, extra)}
+    files["candidates"] = str(_atomic.write_csv(out_dir / "candidates.csv",
+                                                choice.candidates.reset_index(names="candidate")))
+    files["calibration"] = str(_atomic.write_csv(out_dir / "calibration.csv", calibration))
     for name, model in fitted.items():
         _save_bundle(model, out_dir / MODELS_DIR / name, golden)
     files.update(_model_side_files(fitted, choice.name, golden, out_dir))
     files.update(_readable_summary(fitted[choice.name], golden, out_dir))
-    return FitOutcome(choice.name, choice, fitted, comparison, files)
+    return FitOutcome(choice.name, choice, fitted, comparison, files, failed, missing, warnings)
+
+
+def _reason(exc: Exception) -> str:
+    return str(exc).removeprefix("cox: ")
+
+
+def _with_failed(choice: Choice, failed: dict[str, str]) -> Choice:
+    """The choice with a ``failed`` column (the reason, "" when the candidate was fitted) and a row,
+    not eligible, for each candidate left out."""
+    table = choice.candidates.copy()
+    table["failed"] = [failed.get(str(name), "") for name in table.index]
+    for col in ("eligible", "within_1se"):
+        if col in table.columns:
+            table.loc[table["failed"] != "", col] = False
+    extra = [name for name in failed if name not in table.index]
+    if extra:
+        rows = pd.DataFrame({"failed": [failed[n] for n in extra]}, index=pd.Index(extra))
+        for col in ("eligible", "within_1se"):
+            if col in table.columns:
+                rows[col] = False
+        table = pd.concat([table, rows]) if len(table) else rows
+    return dataclasses.replace(choice, candidates=table)
+
+
+def missing_values(table: LifeTable) -> dict:
+    """Units in service (every unit when none is) with a covariate value missing:
+    ``{"units": n, "by_covariate": {covariate: n, ...}, "examples": [unit ids, at most 5]}``;
+    covariates with none are left out."""
+    rows = golden_rows(table)
+    if not table.covariates or not rows.n_rows:
+        return {"units": 0, "by_covariate": {}, "examples": []}
+    gaps = rows.X.isna()
+    units = rows.frame["unit_id"].astype(str)
+    by = {str(col): int(units[gaps[col].to_numpy()].nunique()) for col in table.covariates if gaps[col].any()}
+    hit = gaps.any(axis=1).to_numpy()
+    return {"units": int(units[hit].nunique()), "by_covariate": by,
+            "examples": sorted(units[hit].unique())[:5]}
+
+
+def fit_warnings(choice: Choice, failed: dict[str, str], missing: dict) -> list[str]:
+    """What the planner must read before the numbers, in plain words (one sentence or two each)."""
+    out = [f"The {name} model was left out: its {reason}" + ("" if reason.endswith(".") else ".")
+           for name, reason in failed.items()]
+    table = choice.candidates
+    if "eligible" in table.columns and not table["eligible"].fillna(False).astype(bool).any():
+        out.append(f"{choice.reason[0].upper()}{choice.reason[1:]}")  # says it is a fallback, and which
+    c = table["c_mean"].get(choice.name) if "c_mean" in table.columns else None
+    if c is not None and np.isfinite(c) and c < 0.5:
+        out.append(f"The chosen model {choice.name} ranks held-out units worse than chance (cross-validated "
+                   f"C {c:.3f}, below 0.5). Do not use its ranking to plan work; check the export and covariates.")
+    if missing.get("units"):
+        cols = ", ".join(f"{col} ({n})" for col, n in missing["by_covariate"].items())
+        out.append(f"{missing['units']} unit(s) in service have no value yet for: {cols} (for example "
+                   f"{', '.join(missing['examples'])}; often a unit with no reading yet). They are scored, not "
+                   "left out; each model's rule for a missing value is in docs/models.md.")
+    return out
 
 
 def _readable_summary(model, fleet: LifeTable, out_dir: Path) -> dict[str, str]:
@@ -185,8 +271,14 @@ def golden_rows(table: LifeTable) -> LifeTable:
     return in_service if in_service.n_rows else table
 
 
-def _fit(model: SurvivalModel, table: LifeTable) -> SurvivalModel:
-    return model.fit(table)
+def _fit(model: SurvivalModel, table: LifeTable) -> tuple[SurvivalModel | None, Exception | None]:
+    """``(fitted model, None)``, or ``(None, error)`` when the fit raised a ModelError."""
+    from wearcast.exceptions import ModelError
+
+    try:
+        return model.fit(table), None
+    except ModelError as exc:
+        return None, exc
 
 
 def _save_bundle(model, folder: Path, golden: LifeTable) -> None:
@@ -238,6 +330,7 @@ def describe_fit(outcome: FitOutcome) -> list[str]:
     table = outcome.choice.candidates.reset_index(names="candidate").loc[:, cols]
     lines = ["candidates (unit-grouped cross-validation, truncation-aware C):", format_table(table).rstrip(),
              f"choice: {outcome.choice.reason}"]
+    lines += [f"warning: {text}" for text in outcome.warnings]
     comp = outcome.comparison
     shown = [c for c in comp.columns if c == "model" or (c.startswith(("c_", "brier_integrated"))
              and not c.endswith(("_vs_cox_low", "_vs_cox_high")))]

@@ -67,6 +67,7 @@ class MonthlyOutcome:
     reasons: list[str]
     exit_code: int
     already_recorded: bool = False
+    warnings: tuple[str, ...] = ()  # the fit stage's warnings (wearcast.fitting.fit_warnings)
 
 
 def run_monthly(config: Config, *, as_of: dt.date | None = None, jobs: int | None = None,
@@ -104,7 +105,8 @@ def run_monthly(config: Config, *, as_of: dt.date | None = None, jobs: int | Non
             "champion": outcome["champion_id"], "challenger": outcome["challenger_id"],
             "model_used": outcome["model_used"], "exit_code": code,
         })
-        return MonthlyOutcome(run_id, run_dir, outcome["promote"], decision, outcome["reasons"], code)
+        return MonthlyOutcome(run_id, run_dir, outcome["promote"], decision, outcome["reasons"], code,
+                              warnings=tuple(outcome["warnings"]))
 
 
 def _run_into(config: Config, registry: ModelRegistry, out: Path, run_id: str, inputs: dict,
@@ -176,7 +178,8 @@ def _run_into(config: Config, registry: ModelRegistry, out: Path, run_id: str, i
     # Wall-clock times differ between reruns, so they live apart from the manifest.
     _atomic.write_json(out / "timings.json", {k: round(v, 3) for k, v in state.timings.items()})
     return {"promote": promote, "decision": decision, "reasons": reasons, "challenger_id": challenger_id,
-            "champion_id": champion_id, "model_used": manifest["model_used"], "as_of": as_of}
+            "champion_id": champion_id, "model_used": manifest["model_used"], "as_of": as_of,
+            "warnings": list(state.fit.warnings)}
 
 
 def _choice_metrics(fit) -> dict:

@@ -104,7 +104,8 @@ def fit_stage(config: Config, out_dir: Path, state: JobState) -> dict:
 
     state.fit = fit_models(state.export.table, config, out_dir)
     return {"chosen": state.fit.chosen, "reason": state.fit.choice.reason,
-            "models": sorted(state.fit.models), **{f"{k}_path": v for k, v in state.fit.files.items()}}
+            "models": sorted(state.fit.models), "warnings": list(state.fit.warnings),
+            **{f"{k}_path": v for k, v in state.fit.files.items()}}
 
 
 def rank_stage(config: Config, out_dir: Path, state: JobState) -> dict:

@@ -37,5 +37,7 @@ def command(config: Path, as_of: dt.datetime | None, jobs: int | None, scheduler
     click.echo(f"decision: {outcome.decision}")
     for reason in outcome.reasons:
         click.echo(f"  {reason}")
+    for text in outcome.warnings:
+        click.echo(f"warning: {text}")
     click.echo(f"outputs are in {outcome.run_dir}")
     sys.exit(outcome.exit_code)

@@ -53,6 +53,8 @@ def command(config: Path, out_dir: Path | None, model_name: str | None, jobs: in
     for line in mode_lines(_read_modes(summaries["rank"].get("mode_forecast_path"))):
         click.echo(line)
     click.echo(f"model: {state.ranked.summary.get('model')} — {state.fit.choice.reason}")
+    for text in state.fit.warnings:
+        click.echo(f"warning: {text}")
     click.echo(f"report: {summaries['report']['report_path']}")
     click.echo(f"outputs are in {out_dir}")
     click.echo(EPILOG_CAUTION)

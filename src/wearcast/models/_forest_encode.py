@@ -1,10 +1,14 @@
 """Covariates → a float matrix for tree growing (pure functions).
 
-Numeric covariates pass through as float (missing stays NaN; the trees send
-missing values down the side chosen while growing). A categorical covariate
+Numeric covariates pass through as float (missing stays NaN). The trees send a
+missing value down the side chosen while growing when the split saw missing
+values, otherwise to the child that held more training rows (scikit-learn's
+rule, kept in ``FlatTree.missing_left``); a unit with no reading yet is thus
+scored like most units at each split. A categorical covariate
 with levels ``L1..Lk`` (stored, sorted as text) becomes ``k`` indicator
 columns named ``"<name>=<level>"``; a level not seen while fitting gives all
-zeros, i.e. it goes the "not equal" way at every split on that covariate.
+zeros, i.e. it goes the "not equal" way at every split on that covariate; so
+does a missing category.
 One-hot rather than ordinal codes so a split never invents an order among
 seal types or makers.
 """

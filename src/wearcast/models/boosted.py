@@ -28,6 +28,15 @@ kept with that probability, drawn from the model's seed) and zeros for the
 rest, so a unit's history is never split between in and out of a tree's sample.
 LightGBM's own row bagging is not used: it would split units, and zero
 gradients keep its histograms on contiguous rows, which is faster.
+
+Missing values (a unit with no reading yet) use LightGBM's own handling: a
+covariate with missing values among the rows the trees were grown on gets a
+learned side at every split on it (NaN goes where the loss is lowest); a
+missing category goes to the side of the levels not in the split's set. One
+exception: LightGBM reads NaN as 0 at a split that saw no missing value while
+growing, which would score an unsampled unit as one with zero running hours or
+zero vibration. So a numeric covariate with no missing value in training is
+filled, at scoring, with its training median (``fill_values_``).
 """
 
 from __future__ import annotations
@@ -136,6 +145,7 @@ class BoostedSurvivalTrees(SurvivalModel):
         self.cv_fold_curves_: np.ndarray | None = None
         self.covariates_: tuple[str, ...] = ()
         self.category_levels_: dict[str, list[str]] = {}
+        self.fill_values_: dict[str, float] = {}  # numeric covariate with no NaN in training -> its median
         self.baseline_ = None
 
     @classmethod
@@ -263,6 +273,7 @@ class BoostedSurvivalTrees(SurvivalModel):
         self.n_trees_ = n_trees
         self.covariates_ = covariates
         self.category_levels_ = levels
+        self.fill_values_ = _fill_values(M, covariates, levels)
         eta = _training_scores(booster, len(M))
         self.baseline_ = BaselineHazard.from_risk_sets(risk_sets, eta, interpolation="linear").fit_tails(
             data.entry, data.exit, data.event, eta, weights=weights)
@@ -319,9 +330,15 @@ class BoostedSurvivalTrees(SurvivalModel):
     def _matrix(self, X: pd.DataFrame) -> np.ndarray:
         self._check_fitted()
         try:
-            return encode_covariates(X, self.covariates_, self.category_levels_)
+            M = encode_covariates(X, self.covariates_, self.category_levels_)
         except KeyError as exc:
             raise ModelError(str(exc.args[0])) from exc
+        for col, value in self.fill_values_.items():
+            j = self.covariates_.index(col)
+            gap = np.isnan(M[:, j])
+            if gap.any():
+                M[gap, j] = value
+        return M
 
     def log_risk(self, X: pd.DataFrame) -> np.ndarray:
         """Log relative risk ``eta(x)``, shape (n,), the sum of the trees."""
@@ -384,6 +401,7 @@ class BoostedSurvivalTrees(SurvivalModel):
             "n_trees": self.n_trees_,
             "covariates": list(self.covariates_),
             "category_levels": self.category_levels_,
+            "fill_values": dict(self.fill_values_),
             "cv_curve": None if self.cv_curve_ is None else [_finite(v) for v in self.cv_curve_],
             "cv_fold_curves": None if self.cv_fold_curves_ is None
             else [[_finite(v) for v in row] for row in self.cv_fold_curves_],
@@ -418,6 +436,8 @@ class BoostedSurvivalTrees(SurvivalModel):
         model.n_trees_ = int(info["n_trees"])
         model.covariates_ = tuple(info["covariates"])
         model.category_levels_ = {k: list(v) for k, v in info["category_levels"].items()}
+        # saved before fill values existed: LightGBM's own rule throughout
+        model.fill_values_ = {str(k): float(v) for k, v in (info.get("fill_values") or {}).items()}
         curve = info.get("cv_curve")
         model.cv_curve_ = None if curve is None else np.asarray(curve, dtype=float)
         fold_curves = info.get("cv_fold_curves")
@@ -475,6 +495,15 @@ def _training_scores(booster: lgb.Booster, n: int) -> np.ndarray:
     if not captured or captured[0].shape != (n,):  # pragma: no cover - LightGBM API change
         raise ModelError("could not read the training scores back from LightGBM")
     return captured[0]
+
+
+def _fill_values(M: np.ndarray, covariates, levels) -> dict[str, float]:
+    """Training median of each numeric covariate with no missing value in ``M`` (n, p)."""
+    out = {}
+    for j, col in enumerate(covariates):
+        if col not in levels and len(M) and not np.isnan(M[:, j]).any():
+            out[col] = float(np.median(M[:, j]))
+    return out
 
 
 def _finite(value: float) -> float | None:

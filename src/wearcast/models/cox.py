@@ -14,6 +14,18 @@ covariates as they are, categoricals one-hot with the first level dropped) and
 returns ``exp(eta)`` (lifelines' ``predict_partial_hazard``), and
 ``H(a | x) = H0(a) exp(eta)``. Nothing is standardised by wearcast (lifelines
 standardises internally and reports coefficients on the original scale).
+
+Missing values (a unit with no reading yet): a missing or non-finite value is
+scored at the fleet average of its design column(s), i.e. ``z_j = mean_j``,
+so that covariate adds nothing to the unit's log relative risk (its driver is
+0). While fitting, ``mean_j`` is the mean over the rows that have a value and
+missing rows are filled with it before lifelines sees the design; a missing
+category gets each level column's share. The model never stops for them.
+
+Convergence: lifelines' Newton steps start at step size 0.95; when lifelines
+warns that they did not converge, the fit is retried once with
+:data:`RETRY_STEP_SIZE`, and if that fails too :class:`CoxConvergenceError`
+is raised: diverged coefficients are never kept.
 """
 
 from __future__ import annotations
@@ -26,13 +38,19 @@ import numpy as np
 import pandas as pd
 
 from wearcast import _atomic
-from wearcast.exceptions import BundleError, ModelError
+from wearcast.exceptions import BundleError, CoxConvergenceError, ModelError
 from wearcast.models.base import SurvivalModel
 from wearcast.models.baseline import BaselineHazard
 
 _FILE = "cox.json"
 _FORMAT = "wearcast.cox"
 _VERSION = 1
+
+#: lifelines' first step size (its default) and the smaller one a non-converged fit is retried with.
+FIRST_STEP_SIZE = 0.95
+RETRY_STEP_SIZE = 0.2
+#: lifelines' ConvergenceWarning texts that mean the Newton iterations did not reach the maximum.
+_NOT_CONVERGED = ("failed to converge", "suspiciously close to 0", "norm(delta) is still high")
 
 
 class CoxBaseline(SurvivalModel):
@@ -66,14 +84,15 @@ class CoxBaseline(SurvivalModel):
     # -- design ---------------------------------------------------------------
     def _encode(self, X: pd.DataFrame, *, learn: bool) -> np.ndarray:
         """Design matrix (n, p) in covariate order: numbers as they are, a categorical as one
-        0/1 column per level except the first (the reference)."""
+        0/1 column per level except the first (the reference). Missing values are filled
+        with the column's fleet average (learned here when ``learn``, else ``self.means``)."""
         missing = [c for c in self.covariates if c not in X.columns]
         if missing:
             raise ModelError(
                 f"cox: covariate column(s) {', '.join(missing)} missing from the data to score; "
                 f"the model was fitted with {', '.join(self.covariates)}."
             )
-        blocks, names = [], []
+        blocks, names, gaps = [], [], []
         for col in self.covariates:
             values = X[col]
             if col in self.levels:
@@ -90,20 +109,22 @@ class CoxBaseline(SurvivalModel):
                 for level in self.levels[col][1:]:
                     blocks.append((text == level).astype(float))
                     names.append(f"{col}={level}")
+                    gaps.append(bad)
             else:
                 numeric = pd.to_numeric(values, errors="coerce").to_numpy(float)
                 blocks.append(numeric)
                 names.append(col)
-                bad = ~np.isfinite(numeric)
-            if bad.any():
-                row = int(np.flatnonzero(bad)[0])
-                raise ModelError(
-                    f"cox: row {row}: covariate {col} is missing or not a number ({values.iloc[row]!r}). "
-                    "Fill or drop such rows before fitting/scoring, or leave the covariate out."
-                )
+                gaps.append(~np.isfinite(numeric))
         if learn:
             self.design_columns = names
-        return np.column_stack(blocks) if blocks else np.zeros((len(X), 0))
+        if not blocks:
+            return np.zeros((len(X), 0))
+        Z = np.column_stack(blocks)
+        gap = np.column_stack(gaps)
+        if gap.any():
+            fill = _observed_means(Z, gap) if learn else self.means
+            Z = np.where(gap, fill[None, :], Z)
+        return Z
 
     def _learn_levels(self, X: pd.DataFrame, categorical) -> None:
         """Remember each categorical covariate's levels that occur in the data
@@ -164,15 +185,35 @@ class CoxBaseline(SurvivalModel):
         return self
 
     def _fit_lifelines(self, Z: np.ndarray, entry, exit, event):
-        from lifelines import CoxPHFitter
-        from lifelines.exceptions import ConvergenceError
-
+        """lifelines' fit of the design ``Z``; retried once with a smaller Newton step when
+        lifelines warns that it did not converge. Raises :class:`CoxConvergenceError` when
+        the retry does not converge either."""
         names = [n for n in self.design_columns if n not in self.constant_columns]
         frame = pd.DataFrame(Z, columns=names)
         frame["_entry"], frame["_exit"], frame["_event"] = entry, exit, event.astype(int)
+        first = self._fit_once(frame, names, FIRST_STEP_SIZE)
+        if first[1] is None:
+            return first[0]
+        second = self._fit_once(frame, names, RETRY_STEP_SIZE)
+        if second[1] is None:
+            return second[0]
+        raise CoxConvergenceError(
+            f"cox: lifelines' fit did not converge at step size {FIRST_STEP_SIZE:g}, nor when retried at "
+            f"{RETRY_STEP_SIZE:g} (lifelines: {second[1]}); its coefficients are not used. Look for a covariate "
+            f"among {', '.join(names)} with extreme values or one that nearly separates failed from "
+            f"running units, or use a larger penalizer (now {self.penalizer:g})."
+        )
+
+    def _fit_once(self, frame: pd.DataFrame, names: list[str], step_size: float):
+        """``(fitter, None)`` after a converged fit, ``(None, reason)`` after one lifelines
+        halted or warned did not converge."""
+        from lifelines import CoxPHFitter
+        from lifelines.exceptions import ConvergenceError, ConvergenceWarning
+
         fitter = CoxPHFitter(penalizer=self.penalizer)
         try:
-            with warnings.catch_warnings():
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always", ConvergenceWarning)
                 # lifelines warns about late entry to suggest what we do anyway
                 warnings.filterwarnings("ignore", message=".*entry.*")
                 fitter.fit(
@@ -182,15 +223,25 @@ class CoxBaseline(SurvivalModel):
                     entry_col="_entry",
                     # lifelines' default stopping rule leaves ~4e-5 on the
                     # Stanford heart data; a tighter one costs a Newton step or two
-                    fit_options={"precision": 1e-10},
+                    fit_options={"precision": 1e-10, "step_size": step_size},
                 )
-        except (ConvergenceError, np.linalg.LinAlgError, ValueError) as exc:
+        except (ConvergenceError, np.linalg.LinAlgError) as exc:
+            return None, f"{type(exc).__name__}: {str(exc).splitlines()[0].split('. Please')[0]}"
+        except ValueError as exc:
             raise ModelError(
                 f"cox: lifelines could not fit the model ({type(exc).__name__}: {str(exc).splitlines()[0]}). "
                 f"Try a larger penalizer (now {self.penalizer}) or drop nearly collinear covariates "
                 f"among {', '.join(names)}."
             ) from exc
-        return fitter
+        reasons = [str(w.message).split(". ")[0].strip().rstrip(".") for w in caught
+                   if issubclass(w.category, ConvergenceWarning)
+                   and any(key in str(w.message) for key in _NOT_CONVERGED)]
+        for w in caught:  # pass on what lifelines said besides convergence
+            if not issubclass(w.category, ConvergenceWarning):
+                warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+        if reasons or not np.isfinite(fitter.log_likelihood_) or not np.isfinite(fitter.params_).all():
+            return None, reasons[0] if reasons else "lifelines returned non-finite values"
+        return fitter, None
 
     # -- predictions ----------------------------------------------------------
     @property
@@ -291,3 +342,11 @@ class CoxBaseline(SurvivalModel):
         except json.JSONDecodeError as exc:
             raise BundleError(f"{path}: line {exc.lineno}: not valid JSON ({exc.msg}). Refit and save it again.") from exc
         return cls.from_dict(data)
+
+
+def _observed_means(Z: np.ndarray, gap: np.ndarray) -> np.ndarray:
+    """Mean of each column of ``Z`` (n, p) over the rows where ``gap`` (n, p) is False;
+    0 for a column with no value at all (it is then constant and gets coefficient 0)."""
+    counts = (~gap).sum(axis=0)
+    sums = np.where(gap, 0.0, Z).sum(axis=0)
+    return np.divide(sums, counts, out=np.zeros(Z.shape[1]), where=counts > 0)

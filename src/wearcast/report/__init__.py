@@ -61,6 +61,8 @@ class ReportInputs:
     (``mode_forecast.csv``, :func:`wearcast.modes.mode_forecast`).
     ``replacement_ages``: best planned replacement age per group
     (``replacement_ages.csv``, :func:`wearcast.replacement.replacement_ages`).
+    ``warnings``: sentences the run printed as warnings (``metrics.json``
+    ``warnings``, :func:`wearcast.fitting.fit_warnings`), shown first.
     """
 
     title: str = "Fleet failure-risk report"
@@ -86,6 +88,7 @@ class ReportInputs:
     life_statistics: pd.DataFrame | None = None
     mode_forecast: pd.DataFrame | None = None
     replacement_ages: pd.DataFrame | None = None
+    warnings: list[str] = field(default_factory=list)
     top_k: int = 20
 
     def group_columns(self, ranked: pd.DataFrame) -> list[str]:
@@ -185,6 +188,7 @@ def report_inputs_from_run_folder(folder: str | Path, **overrides: Any) -> Repor
         "monthly_changes": _read_json(folder, "monthly_changes.json"),
         "data_quality": _read_json(folder, "check_summary.json"),
         "group_by": summary.get("group_by"),
+        "warnings": _run_warnings(summary, metrics),
     }
     forecast = values["fleet_forecast"]
     if forecast is not None:
@@ -208,6 +212,13 @@ def report_inputs_from_run_folder(folder: str | Path, **overrides: Any) -> Repor
         raise TypeError(f"unknown report input(s): {', '.join(sorted(unknown))}")
     values.update(overrides)
     return ReportInputs(**{k: v for k, v in values.items() if v is not None or k in overrides})
+
+
+def _run_warnings(summary: dict, metrics: dict) -> list[str] | None:
+    """The warnings a run recorded (metrics.json, then summary.json), each once, in order."""
+    found = [str(w) for source in (metrics, summary) if isinstance(source.get("warnings"), list)
+             for w in source["warnings"]]
+    return list(dict.fromkeys(found)) or None
 
 
 def _find(folder: Path, name: str) -> Path | None:

@@ -20,6 +20,18 @@ Section = tuple[str, dict[str, bytes]]
 _NONE: Section = ("", {})
 
 
+# -- 0. read first --------------------------------------------------------------
+
+def read_first(inputs) -> Section:
+    """The run's warnings (those the terminal printed), above everything else."""
+    items = [str(w) for w in (inputs.warnings or []) if str(w).strip()]
+    if not items:
+        return _NONE
+    body = f'<div class="caution-strip" id="run-warnings">{h.bullet_list(items)}</div>'
+    lead = "This run printed these warnings. Read them before using the numbers below."
+    return h.section("read-first", "Read first", body, lead=lead), {}
+
+
 # -- 1. this month -----------------------------------------------------------
 
 def headline(inputs) -> Section:
@@ -516,8 +528,8 @@ def cautions(inputs) -> Section:
     return h.section("cautions", "What these numbers mean", body), {}
 
 
-SECTIONS = (headline, evidence, fleet, drivers, changes, data_quality, cautions)
-TITLES = {"this-month": "This month", "evidence": "Model evidence", "fleet": "Fleet reliability",
+SECTIONS = (read_first, headline, evidence, fleet, drivers, changes, data_quality, cautions)
+TITLES = {"read-first": "Read first", "this-month": "This month", "evidence": "Model evidence", "fleet": "Fleet reliability",
           "drivers": "Drivers", "changes": "Since last month", "data-quality": "Data quality",
           "cautions": "What these numbers mean"}
 
