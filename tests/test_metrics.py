@@ -129,6 +129,12 @@ def test_late_entrant_is_not_compared_with_an_earlier_failure():
 
 
 # -- time-dependent C on start/stop rows -----------------------------------------------
+def load_stanford_rows():
+    from lifelines.datasets import load_stanford_heart_transplants
+
+    return load_stanford_heart_transplants()
+
+
 def _stanford_rows_and_risk():
     # Source: Stanford heart transplant start/stop data shipped by lifelines (Crowley and Hu
     # 1977, JASA 72:27-36); the risk of every row is lifelines' CoxTimeVaryingFitter
@@ -368,3 +374,51 @@ def test_bootstrap_interval_and_paired_difference():
     diff = paired_difference(c_of, a, b, groups, n=50, seed=1)
     assert diff.estimate == pytest.approx(c_of(**a) - c_of(**b))
     assert diff.low < diff.estimate < diff.high
+
+
+# -- probability with the readings in force ------------------------------------------
+def test_in_force_probability_on_stanford_matches_lifelines_time_varying_cox():
+    # Source: Stanford heart transplant start/stop data shipped by lifelines. Reference: the
+    # same probability built from lifelines' CoxTimeVaryingFitter (its Breslow baseline
+    # cumulative hazard, a step function, and each row's partial hazard), patient by patient:
+    # P(die within 100 days of acceptance) = 1 - exp(-sum over rows of H0 increment x exp(x b)),
+    # the last row held to day 100.
+    from lifelines import CoxTimeVaryingFitter
+
+    from wearcast._metrics_in_force import in_force_probability, window_ends
+
+    d = load_stanford_rows()
+    ctv = CoxTimeVaryingFitter(penalizer=0.0).fit(d, id_col="id", event_col="event", start_col="start",
+                                                  stop_col="stop")
+    base = ctv.baseline_cumulative_hazard_.iloc[:, 0]
+    H0 = lambda t: np.array([base[base.index <= v].iloc[-1] if (base.index <= v).any() else 0.0  # noqa: E731
+                             for v in np.atleast_1d(t)])
+    partial = np.asarray(ctv.predict_partial_hazard(d), float).ravel()
+    _, episode = np.unique(d["id"].to_numpy(), return_inverse=True)
+    last = d.groupby("id")["stop"].transform("max").to_numpy() == d["stop"].to_numpy()
+    entry = d.groupby("id")["start"].transform("min").to_numpy(float)
+    ends, inside = window_ends(d["start"], d["stop"], entry, 100.0, last)
+    got = in_force_probability(H0(d["start"]) * partial, H0(ends) * partial, inside, episode, episode.max() + 1)
+    expected = []
+    for pid, rows in d.groupby("id", sort=True):
+        rows = rows.sort_values("start")
+        risk = np.asarray(ctv.predict_partial_hazard(rows), float).ravel()
+        total = 0.0
+        for k, (start, stop) in enumerate(zip(rows["start"], rows["stop"])):
+            stop = 100.0 if k == len(rows) - 1 else min(stop, 100.0)
+            if start < stop:
+                total += (H0(stop)[0] - H0(start)[0]) * risk[k]
+        expected.append(1 - np.exp(-total))
+    assert np.allclose(got, expected, atol=1e-12)
+    assert 0.2 < np.mean(got) < 0.6  # a sizeable share died within 100 days of acceptance
+
+
+def test_in_force_probability_with_one_row_per_episode_is_the_conditional_probability():
+    from wearcast._metrics_in_force import in_force_probability, window_ends
+
+    entry = np.array([0.0, 10.0, 30.0])
+    exit = np.array([5.0, 50.0, 35.0])
+    H = lambda a: 0.01 * a ** 1.5  # noqa: E731 - any increasing cumulative hazard
+    ends, inside = window_ends(entry, exit, entry, 20.0, np.ones(3, bool))
+    got = in_force_probability(H(entry), H(ends), inside, np.arange(3), 3)
+    assert np.allclose(got, 1 - np.exp(-(H(entry + 20.0) - H(entry))))

@@ -17,6 +17,7 @@ from wearcast import LifeTable
 from wearcast.exceptions import ConfigError
 from wearcast.validation import (
     compare_models,
+    constant_score_models,
     cross_validate,
     format_table,
     choice_concordance,
@@ -231,3 +232,17 @@ def test_parallel_folds_give_the_same_results():
     pd.testing.assert_frame_equal(serial.per_fold, parallel.per_fold)
     pd.testing.assert_frame_equal(compare_models(serial, bootstrap=8, seed=3, jobs=1),
                                   compare_models(serial, bootstrap=8, seed=3, jobs=2))
+
+
+def test_booster_that_keeps_no_split_is_flagged_constant():
+    # A leaf must hold more failures than Rossi has (114), so every tree is a single leaf and
+    # the held-out score is one value: C exactly 0.5 (Harrell's tie rule, common practice).
+    cox = pytest.importorskip("wearcast.models.cox")
+    from wearcast.models.boosted import BoostedSurvivalTrees, BoostSettings
+
+    flat = BoostedSurvivalTrees(BoostSettings(min_events_per_leaf=1000, max_trees=5, folds=2, early_stopping_trees=2))
+    result = cross_validate({"cox": cox.CoxBaseline(), "boosted_d1": flat}, _rossi_table(), k=3, seed=1,
+                            horizons_days=[90])
+    assert constant_score_models(result) == {"cox": False, "boosted_d1": True}
+    summary = result.summary.set_index("model")
+    assert summary.loc["boosted_d1", "c_truncation"] == 0.5 and summary.loc["boosted_d1", "c_truncation_se"] == 0.0

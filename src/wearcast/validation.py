@@ -21,8 +21,12 @@ its follow-up, so a reading that rises with wear makes a correct model look
 worse than chance. There every held-out *row* is also scored with the
 covariates in force on it and the fold gets ``c_time_dependent``
 (:func:`wearcast.metrics.time_dependent_c`): each failure against the lives
-at risk at its age, with the readings they had then. :func:`choice_concordance`
-says which C the model choice and the promotion gate use.
+at risk at its age, with the readings they had then; and the horizon
+probabilities behind calibration and the expected failure counts are taken
+with the readings in force over the window (the last one held to its end,
+:mod:`wearcast._metrics_in_force`) instead of the last row's throughout.
+:func:`choice_concordance` says which C the model choice and the promotion
+gate use. Episodes and folds live in :mod:`wearcast.episodes`.
 """
 
 from __future__ import annotations
@@ -38,7 +42,19 @@ from joblib import Parallel, delayed
 
 from wearcast import _atomic
 from wearcast._metrics_concordance import truncated_concordance_counts
-from wearcast.exceptions import ConfigError, ModelError
+from wearcast._metrics_in_force import in_force_probability, window_ends
+from wearcast.episodes import (  # noqa: F401 - re-exported: validation is where callers look
+    TIME_DEPENDENT_WORDS,
+    TRUNCATION_WORDS,
+    Episodes,
+    choice_concordance,
+    grouped_folds,
+    has_start_stop,
+    row_episodes,
+    score_episodes,
+    split_fold,
+)
+from wearcast.exceptions import ModelError
 from wearcast.lifetable import LifeTable
 from wearcast.metrics import (
     IPCW_ENTRY_NOTE,
@@ -54,102 +70,6 @@ from wearcast.metrics import (
 from wearcast.models.base import SurvivalModel
 
 BASELINE = "cox"
-
-
-# -- what is scored ------------------------------------------------------------------
-@dataclass(frozen=True)
-class Episodes:
-    """Scored episodes of a life table; every array has shape (n_episodes,).
-
-    ``rows``: position of the episode's last row in the table (its covariates
-    are used); ``entry``/``exit``: ages in days; ``event``: ends in a failure;
-    ``unit_id``/``life``: whose episode it is.
-    """
-
-    rows: np.ndarray
-    entry: np.ndarray
-    exit: np.ndarray
-    event: np.ndarray
-    unit_id: np.ndarray
-    life: np.ndarray
-
-    def __len__(self) -> int:
-        return len(self.rows)
-
-    def subset(self, mask: np.ndarray) -> "Episodes":
-        return Episodes(*(getattr(self, f)[mask] for f in ("rows", "entry", "exit", "event", "unit_id", "life")))
-
-
-def score_episodes(table: LifeTable) -> Episodes:
-    """One scored row per episode of ``table`` (see the module docstring)."""
-    f = table.frame
-    if len(f) == 0:
-        empty = np.zeros(0)
-        return Episodes(empty.astype(np.int64), empty, empty, empty.astype(bool), empty.astype(object), empty)
-    order = np.lexsort((f["entry_age"].to_numpy(), f["life"].to_numpy(), f["unit_id"].to_numpy()))
-    unit = f["unit_id"].to_numpy()[order]
-    life = f["life"].to_numpy()[order]
-    failed = f["failed"].to_numpy(bool)[order]
-    new_life = np.ones(len(order), bool)
-    new_life[1:] = (unit[1:] != unit[:-1]) | (life[1:] != life[:-1])
-    starts = new_life.copy()
-    starts[1:] |= failed[:-1]
-    first = np.flatnonzero(starts)
-    last = np.concatenate([first[1:] - 1, [len(order) - 1]])
-    rows = order[last]
-    return Episodes(
-        rows=rows,
-        entry=f["entry_age"].to_numpy(float)[order[first]],
-        exit=f["exit_age"].to_numpy(float)[rows],
-        event=failed[last],
-        unit_id=unit[last].astype(str),
-        life=life[last],
-    )
-
-
-# -- folds ---------------------------------------------------------------------------
-def grouped_folds(table: LifeTable, k: int, seed: int) -> list[tuple[np.ndarray, np.ndarray]]:
-    """``k`` (train_rows, test_rows) pairs of row positions; all rows of a unit share a fold.
-
-    Units are shuffled by ``seed`` and dealt round-robin, so fold sizes differ
-    by at most one unit. Raises :class:`ConfigError` when there are fewer units than folds.
-    """
-    codes = table.unit_codes()
-    n_units = int(codes.max()) + 1 if len(codes) else 0
-    if k < 2 or n_units < k:
-        raise ConfigError(
-            f"cannot make {k} unit-grouped folds from {n_units} units; set [validation] folds "
-            f"between 2 and {max(2, n_units)}."
-        )
-    fold_of_unit = np.empty(n_units, dtype=np.int64)
-    fold_of_unit[np.random.default_rng(seed).permutation(n_units)] = np.arange(n_units) % k
-    fold = fold_of_unit[codes]
-    return [(np.flatnonzero(fold != i), np.flatnonzero(fold == i)) for i in range(k)]
-
-
-def has_start_stop(table: LifeTable) -> bool:
-    """Whether some episode of ``table`` spans more than one row (covariates change within a life)."""
-    return len(score_episodes(table)) < table.n_rows
-
-
-def choice_concordance(start_stop: bool) -> tuple[str, str]:
-    """``(column, words)`` of the C that ranks models: the time-dependent C on
-    start/stop data, the truncation-aware C on the last row otherwise."""
-    if start_stop:
-        return "c_time_dependent", TIME_DEPENDENT_WORDS
-    return "c_truncation", TRUNCATION_WORDS
-
-
-TIME_DEPENDENT_WORDS = "time-dependent truncation-aware C (readings in force at each failure)"
-TRUNCATION_WORDS = "truncation-aware C (one row per unit)"
-
-
-def split_fold(table: LifeTable, episodes: Episodes, train_rows: np.ndarray, test_rows: np.ndarray):
-    """``(training table, held-out episodes, training episodes)`` of one fold."""
-    in_test = np.zeros(table.n_rows, bool)
-    in_test[test_rows] = True
-    return (table.take_rows(train_rows), episodes.subset(in_test[episodes.rows]),
-            episodes.subset(~in_test[episodes.rows]))
 
 
 # -- cross-validation ------------------------------------------------------------------
@@ -276,6 +196,7 @@ def cross_validate(
     folds = grouped_folds(table, k, fold_seed)
     episodes = score_episodes(table)
     start_stop = len(episodes) < table.n_rows
+    row_episode = row_episodes(table) if start_stop else None
     if tau_days is None:
         tau_days = choose_tau(episodes.exit, episodes.event, episodes.exit)
     tau_days = float(tau_days)
@@ -288,11 +209,19 @@ def cross_validate(
     for i, (train_rows, test_rows) in enumerate(folds):
         train_table, test_ep, train_ep = split_fold(table, episodes, train_rows, test_rows)
         X_test = table.X.iloc[test_ep.rows].reset_index(drop=True)
-        X_rows = table.X.iloc[test_rows].reset_index(drop=True) if start_stop else None
+        rows_in = None
+        if start_stop:
+            # every held-out row, with the position of its episode among the held-out episodes
+            local = np.full(len(episodes), -1, np.int64)
+            held = np.zeros(table.n_rows, bool)
+            held[test_rows] = True
+            local[held[episodes.rows]] = np.arange(len(test_ep))
+            rows_in = (table.X.iloc[test_rows].reset_index(drop=True), table.entry[test_rows],
+                       table.exit[test_rows], local[row_episode[test_rows]], np.isin(test_rows, test_ep.rows))
         held_out.append((test_ep, train_ep, test_rows))
         for j, name in enumerate(names):
             tasks.append(delayed(_fit_and_predict)(models[name], int(model_seeds[i, j]), train_table, X_test,
-                                                   test_ep.entry, horizons, brier_times, X_rows))
+                                                   test_ep.entry, horizons, brier_times, rows_in))
     n_jobs = -1 if jobs == 0 else max(1, int(jobs))
     results = iter(Parallel(n_jobs=n_jobs)(tasks) if n_jobs != 1 else [t[0](*t[1], **t[2]) for t in tasks])
     unit_ids = table.frame["unit_id"].to_numpy().astype(str)
@@ -329,17 +258,39 @@ def cross_validate(
                     start_stop)
 
 
+def constant_score_models(result: CVResult) -> dict[str, bool]:
+    """Model name -> whether its held-out risk score was the same for every unit in every fold.
+
+    Such a model orders nobody (a booster that kept no tree): its C is 0.5 by
+    construction with no spread over folds, so the choice must not treat it as
+    a candidate that ranks units at chance level.
+    """
+    return {name: all(len(s.risk) > 0 and np.ptp(s.risk) == 0 for s in folds)
+            for name, folds in result.scores.items()}
+
+
 def _fit_and_predict(template: SurvivalModel, seed: int, train_table: LifeTable, X_test: pd.DataFrame,
-                     entry_test: np.ndarray, horizons, brier_times: np.ndarray, X_rows: pd.DataFrame | None = None):
-    """One (fold, model) cell: fit a fresh copy on the training units, predict the held-out ones
-    (and score every held-out row when ``X_rows`` is given)."""
+                     entry_test: np.ndarray, horizons, brier_times: np.ndarray, rows_in=None):
+    """One (fold, model) cell: fit a fresh copy on the training units, predict the held-out ones.
+
+    ``rows_in`` (start/stop data): ``(X, entry, exit, episode, last row)`` of every held-out row; each row
+    is then scored with its own covariates, and the horizon probabilities are taken with the
+    readings in force over the window (:mod:`wearcast._metrics_in_force`) instead of the last row's."""
     model = template.unfitted_copy(seed)
     model.fit(train_table)
     # one scoring pass; the metrics use the risk score only through its order (log is fine)
     risk, p = model.score_units(X_test, entry_test, horizons)
     risk, p = np.asarray(risk, float), np.asarray(p, float)
     prob = {h: p[:, j] for j, h in enumerate(horizons)}
-    row_risk = None if X_rows is None else np.asarray(model.risk_score(X_rows), float)
+    row_risk = None
+    if rows_in is not None:
+        X_rows, row_entry, row_exit, episode, last_row = rows_in
+        row_risk = np.asarray(model.risk_score(X_rows), float)
+        h_start = np.asarray(model.cumulative_hazard_at(X_rows, row_entry), float)
+        for h in horizons:
+            ends, inside = window_ends(row_entry, row_exit, entry_test[episode], h, last_row)
+            h_end = np.asarray(model.cumulative_hazard_at(X_rows, ends), float)
+            prob[h] = in_force_probability(h_start, h_end, inside, episode, len(entry_test))
     return risk, prob, np.asarray(model.survival(X_test, brier_times), float), row_risk
 
 
