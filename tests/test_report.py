@@ -565,3 +565,16 @@ def test_b_lives_on_few_units_are_flagged(tmp_path):
     plain = ReportInputs(title="Few", as_of="2026-11-30", life_table=table, group_by="site", life_statistics=stats)
     assert "Read with care" not in " ".join(_parse(build_report(plain, tmp_path / "p")["report"].read_text(
         encoding="utf-8")).text)
+
+
+def test_report_names_the_concordance_that_chose_the_model(tmp_path):
+    comparison = pd.DataFrame({"model": ["cox", "forest_sqrt"], "c_truncation": [0.47, 0.48],
+                               "c_time_dependent": [0.74, 0.71], "c_time_dependent_low": [0.69, 0.64],
+                               "c_time_dependent_high": [0.76, 0.73]})
+    choice = {"chosen": "cox", "reason": "chose cox: highest cross-validated C.",
+              "concordance": "c_time_dependent",
+              "concordance_words": "time-dependent truncation-aware C (readings in force at each failure)"}
+    paths = build_report(ReportInputs(comparison=comparison, choice=choice), tmp_path)
+    text = " ".join(_parse(paths["report"].read_text(encoding="utf-8")).text)
+    assert "ranked on the cross-validated time-dependent truncation-aware C (readings in force" in text
+    assert "C with the readings in force at each failure" in text

@@ -34,7 +34,14 @@ from wearcast.lifetable import LifeTable
 from wearcast.metrics import horizon_calibration
 from wearcast.models.base import SurvivalModel
 from wearcast.selection import CANDIDATE_ORDER, Choice, as_dict, candidate_names, choose, pinned
-from wearcast.validation import compare_models, cross_validate, format_table, write_comparison
+from wearcast.validation import (
+    choice_concordance,
+    compare_models,
+    constant_score_models,
+    cross_validate,
+    format_table,
+    write_comparison,
+)
 
 MODELS_DIR = "models"
 
@@ -126,18 +133,24 @@ def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | N
                         jobs=config.validation.jobs)
     summary = cv.summary.set_index("model")
     main_h = max(horizons)
+    # start/stop rows: rank on the time-dependent C (readings in force at each failure)
+    concordance = choice_concordance(cv.time_dependent)
+    c_col = concordance[0]
     choice_input = pd.DataFrame({
-        "c_mean": summary["c_truncation"],
-        "c_se": summary["c_truncation_se"],
+        "c_mean": summary[c_col],
+        "c_se": summary[f"{c_col}_se"],
         "expected_failures": summary[f"expected_failures_{main_h}d"],
         "observed_failures": summary[f"observed_failures_{main_h}d"],
+        "constant_score": pd.Series(constant_score_models(cv)),
     })
     if pin is None:
-        choice = choose(choice_input, calibration_share=config.validation.calibration_share, note=note)
+        choice = choose(choice_input, calibration_share=config.validation.calibration_share, note=note,
+                        concordance=concordance)
     else:
-        choice = pinned(pin, choice_input)
+        choice = pinned(pin, choice_input, concordance)
 
-    resampled = None if config.validation.bootstrap_metrics == "all" else ("c_harrell", "c_truncation")
+    resampled = (None if config.validation.bootstrap_metrics == "all"
+                 else ("c_harrell", "c_truncation", "c_time_dependent"))
     comparison = compare_models(cv, bootstrap=config.validation.bootstrap, seed=compare_seed,
                                 resampled_columns=resampled, jobs=config.validation.jobs)
     calibration = _calibration(cv, [choice.name, "cox"], main_h)
@@ -236,7 +249,8 @@ def describe_fit(outcome: FitOutcome) -> list[str]:
     cols = [c for c in ("candidate", "c_mean", "c_se", "calibration_ratio", "eligible", "within_1se")
             if c in outcome.choice.candidates.reset_index(names="candidate").columns]
     table = outcome.choice.candidates.reset_index(names="candidate").loc[:, cols]
-    lines = ["candidates (unit-grouped cross-validation, truncation-aware C):", format_table(table).rstrip(),
+    lines = [f"candidates (unit-grouped cross-validation, c_mean = {outcome.choice.concordance_words}, "
+             f"column {outcome.choice.concordance}):", format_table(table).rstrip(),
              f"choice: {outcome.choice.reason}"]
     comp = outcome.comparison
     shown = [c for c in comp.columns if c == "model" or (c.startswith(("c_", "brier_integrated"))

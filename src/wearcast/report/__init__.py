@@ -61,6 +61,8 @@ class ReportInputs:
     (``mode_forecast.csv``, :func:`wearcast.modes.mode_forecast`).
     ``replacement_ages``: best planned replacement age per group
     (``replacement_ages.csv``, :func:`wearcast.replacement.replacement_ages`).
+    ``choice``: the model choice from ``metrics.json`` (``chosen``, ``reason``,
+    ``concordance_words``: which C ranked the candidates).
     """
 
     title: str = "Fleet failure-risk report"
@@ -86,6 +88,7 @@ class ReportInputs:
     life_statistics: pd.DataFrame | None = None
     mode_forecast: pd.DataFrame | None = None
     replacement_ages: pd.DataFrame | None = None
+    choice: dict | None = None
     top_k: int = 20
 
     def group_columns(self, ranked: pd.DataFrame) -> list[str]:
@@ -185,6 +188,7 @@ def report_inputs_from_run_folder(folder: str | Path, **overrides: Any) -> Repor
         "monthly_changes": _read_json(folder, "monthly_changes.json"),
         "data_quality": _read_json(folder, "check_summary.json"),
         "group_by": summary.get("group_by"),
+        "choice": metrics.get("choice") if isinstance(metrics.get("choice"), dict) else None,
     }
     forecast = values["fleet_forecast"]
     if forecast is not None:

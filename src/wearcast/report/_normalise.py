@@ -102,6 +102,8 @@ def measure_label(measure: str) -> str:
     """Plain names for concordance measures."""
     if measure == "c_harrell":
         return "Harrell's C"
+    if measure == "c_time_dependent":
+        return "C with the readings in force at each failure"
     if measure == "c_truncation":
         return "C with delayed entry"
     m = re.match(r"c_uno_tau_(\d+)d", measure)
