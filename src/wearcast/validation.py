@@ -43,6 +43,7 @@ from joblib import Parallel, delayed
 from wearcast import _atomic
 from wearcast._metrics_concordance import truncated_concordance_counts
 from wearcast._metrics_in_force import in_force_probability, window_ends
+from wearcast._seeds import name_seed
 from wearcast.episodes import (  # noqa: F401 - re-exported: validation is where callers look
     TIME_DEPENDENT_WORDS,
     TRUNCATION_WORDS,
@@ -180,7 +181,8 @@ def cross_validate(
     entry). ``tau_days``: Uno's τ; by default chosen once from all episodes
     (:func:`wearcast.metrics.choose_tau`). Seeds for the folds and for every
     (fold, model) refit are drawn up front from ``numpy.random.default_rng(seed)``,
-    so ``jobs`` (parallel worker processes for the fits; 0 = all cores) never
+    each model's from its name (:func:`wearcast._seeds.name_seed`, so the list of
+    models moves no model's results), so ``jobs`` (parallel worker processes for the fits; 0 = all cores) never
     changes a result.
     """
     if not models:
@@ -191,8 +193,9 @@ def cross_validate(
     horizons = [int(h) for h in horizons_days]
     names = list(models)
     rng = np.random.default_rng(seed)
-    fold_seed = int(rng.integers(2**31 - 1))
-    model_seeds = rng.integers(0, 2**31 - 1, size=(k, len(names)))
+    fold_seed, model_base = (int(v) for v in rng.integers(0, 2**31 - 1, size=2))
+    # each (fold, model) seed from the model's name: the candidate list moves no model's results
+    model_seeds = np.array([[name_seed(model_base, name, i) for name in names] for i in range(k)], np.int64)
     folds = grouped_folds(table, k, fold_seed)
     episodes = score_episodes(table)
     start_stop = len(episodes) < table.n_rows
