@@ -200,3 +200,26 @@ def test_forecast_interval_from_refits_is_the_ranked_list_interval(scenario):
     assert list(pmf_quantile(refits.count_pmf[0][0], list(INTERVAL))) == [low.iloc[1], high.iloc[1]]
     plain = backtest.run_backtest(config, factories, ORIGIN, HORIZON, top_k=5, seed=4)
     assert f"forecast_{HORIZON}d_low" not in plain.per_origin.columns
+
+
+def test_window_rows_carry_the_readings_in_force():
+    # Unit A (in service at age 100) has two later rows in the window, with a new reading
+    # from age 130, and fails at 150; B's record ends at 200, past a 60-day window.
+    at_origin = LifeTable.from_frame(pd.DataFrame({
+        "unit_id": ["A", "B"], "entry_age": [0.0, 0.0], "exit_age": [100.0, 120.0], "failed": [False, False],
+        "x": [1.0, 2.0], "in_service": [True, True]}), ["x"])
+    later = LifeTable.from_frame(pd.DataFrame({
+        "unit_id": ["A", "A", "A", "B", "B"], "entry_age": [0.0, 100.0, 130.0, 0.0, 120.0],
+        "exit_age": [100.0, 130.0, 150.0, 120.0, 200.0], "failed": [False, False, True, False, False],
+        "x": [1.0, 1.0, 5.0, 2.0, 3.0]}), ["x"])
+    X, entry, exit_, event = backtest.window_rows(at_origin, later, 60)
+    assert X["x"].tolist() == [1.0, 5.0, 3.0]
+    assert entry.tolist() == [100.0, 130.0, 120.0] and exit_.tolist() == [130.0, 150.0, 180.0]
+    assert event.tolist() == [False, True, False]
+    # at A's failure (age 150) B is at risk with reading 3: A's reading then (5) is higher
+    from wearcast.metrics import time_dependent_c
+
+    assert time_dependent_c(entry, exit_, event, X["x"].to_numpy()).c == 1.0
+    per_origin = pd.DataFrame({"c_harrell_60d": [0.6], "c_time_dependent_60d": [0.7]})
+    assert backtest.gate_concordance(per_origin, 60)[0] == "c_time_dependent_60d"
+    assert backtest.gate_concordance(per_origin.drop(columns="c_time_dependent_60d"), 60)[0] == "c_harrell_60d"
