@@ -28,6 +28,14 @@ the data as of ``D`` (:func:`wearcast.resample.bootstrap_refits`), the
 failure-count law averaged over refits (chance and model uncertainty
 together), and its 5 % and 95 % quantiles; the observed count is checked
 against that 90 % interval.
+
+Which models: :func:`wearcast.fitting.backtest_models` gives ``chosen`` (the
+model choice run on the data as of each origin, as ``wearcast fit`` would run
+it then, or the pinned model; column ``candidate`` says which one it picked)
+beside the fixed ``[model] fit`` models and the Cox baseline. Every (origin,
+model) seed comes from the model's name and the origin's date
+(:func:`wearcast._seeds.name_seed`), so adding or removing a model, or an
+origin, changes no other result.
 """
 
 from __future__ import annotations
@@ -43,6 +51,7 @@ import pandas as pd
 
 from wearcast import _atomic
 from wearcast._poisson_binomial import count_pmf, pmf_quantile
+from wearcast._seeds import name_seed
 from wearcast.config import Config
 from wearcast.exceptions import ConfigError, ModelError
 from wearcast.io import load_export
@@ -235,8 +244,9 @@ def run_backtest(
 
     ``model_factories``: name -> function(seed) returning an unfitted model;
     the name ``"cox"`` is the baseline for the ``_vs_cox`` lift. Seeds for
-    every (origin, model) fit are drawn up front from
-    ``numpy.random.default_rng(seed)``. Raises :class:`ConfigError` when an
+    every (origin, model) fit and its refits come from ``seed``, the model's
+    name and the origin's date (:func:`wearcast._seeds.name_seed`), so the
+    other models and origins listed never change them. Raises :class:`ConfigError` when an
     origin plus the horizon passes the export date (``fleet.as_of``, or the
     export's latest date when that is unset). ``refits``: bootstrap refits
     per (origin, model) for the fleet forecast's 90 % interval (0 = skip);
@@ -249,7 +259,6 @@ def run_backtest(
         raise ConfigError(f"horizon_days and top_k must be at least 1; got {horizon_days} and {top_k}.")
     dates = origin_dates(origin, every_months, origins)
     names = list(model_factories)
-    seeds = np.random.default_rng(seed).integers(0, 2**31 - 1, size=(len(dates), len(names), 2))
     export_end = config.fleet.as_of
     if export_end is None:
         # only the export's last date is used from this full read, never its records
@@ -272,13 +281,14 @@ def run_backtest(
         X = open_rows.X
         age = open_rows.exit
         window = window_rows(fit_table, later, horizon_days) if has_start_stop(fit_table) else None
-        for j, name in enumerate(names):
-            model = model_factories[name](int(seeds[i, j, 0]))
+        for name in names:
+            model = model_factories[name](name_seed(seed, name, day.toordinal(), 0))
             try:
                 model.fit(fit_table)
+                # a chosen model's refits refit the candidate it chose (tuned choices fixed), not the choice
                 forecast = {} if refits <= 0 else _forecast_interval(
-                    fit_table, model, refits, int(seeds[i, j, 1]), horizon_days, refit_jobs,
-                    int(outcome["failed"].sum()))
+                    fit_table, getattr(model, "model_", None) or model, refits,
+                    name_seed(seed, name, day.toordinal(), 1), horizon_days, refit_jobs, int(outcome["failed"].sum()))
             except ModelError as exc:
                 raise ModelError(f"backtest origin {day}, model {name}: {exc}") from exc
             p = np.asarray(model.fail_probability(X, age, horizon_days), float)
@@ -287,8 +297,8 @@ def run_backtest(
                 X_w, entry_w, exit_w, event_w = window
                 risk_w = np.asarray(model.risk_score(X_w), float) if len(X_w) else np.zeros(0)
                 td = {_names(horizon_days, top_k)["c_td"]: time_dependent_c(entry_w, exit_w, event_w, risk_w).c}
-            rows.append({"origin": day, "model": name, "fit_rows": fit_table.n_rows,
-                         "fit_failures": fit_table.n_failures,
+            rows.append({"origin": day, "model": name, "candidate": getattr(model, "chosen_", None) or name,
+                         "fit_rows": fit_table.n_rows, "fit_failures": fit_table.n_failures,
                          **score_origin(p, outcome, horizon_days, top_k), **td, **forecast})
             unit_frames.append(outcome.assign(origin=day, model=name, probability=p))
             mode_rows += [{"origin": day, "model": name, **r}
@@ -391,6 +401,7 @@ def _summarise(per_origin: pd.DataFrame, models: list[str], horizon_days: int, t
         out.append({
             "model": name,
             "origins": len(part),
+            "candidates": ", ".join(dict.fromkeys(part["candidate"].astype(str))),
             **concordance,
             names["expected"]: float(part[names["expected"]].sum()),
             names["observed"]: int(failures),

@@ -28,6 +28,7 @@ import pandas as pd
 from joblib import Parallel, delayed
 
 from wearcast import _atomic
+from wearcast._seeds import name_seed
 from wearcast.config import Config
 from wearcast.exceptions import ConfigError
 from wearcast.lifetable import LifeTable
@@ -112,13 +113,20 @@ class FitOutcome:
         return self.models[self.chosen]
 
 
-def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | None = None) -> FitOutcome:
-    """Run the fit stage on ``table``; write its files into ``out_dir``."""
-    out_dir = Path(out_dir)
-    seed = config.model.seed if seed is None else seed
+def stage_seeds(seed: int) -> tuple[int, int, int]:
+    """``(cross-validation, comparison, final fits)`` seeds of a fit stage run with ``seed``."""
     rng = np.random.default_rng(seed)
     cv_seed, compare_seed, fit_seed = (int(s) for s in rng.integers(0, 2**31 - 1, size=3))
+    return cv_seed, compare_seed, fit_seed
 
+
+def final_fit_seed(fit_seed: int, name: str) -> int:
+    """The final fit's seed of candidate ``name``: from the name, so the fit list moves no other model."""
+    return name_seed(fit_seed, name)
+
+
+def run_choice(table: LifeTable, config: Config, cv_seed: int):
+    """Cross-validate the candidates on ``table`` and choose: ``(CVResult, Choice)``. Writes nothing."""
     pin = None if config.model.choose == "auto" else candidate_for(config.model.choose, config)
     if pin is None:
         names, note = candidate_names(table.n_failures, len(table.covariates))
@@ -126,7 +134,8 @@ def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | N
     else:
         names, note = ["cox", pin], None
     names = list(dict.fromkeys(["cox", *names]))
-    candidates = {name: make_model(name, config, seed, inner_folds=SELECTION_INNER_FOLDS) for name in names}
+    # only the settings matter: cross_validate gives every (fold, candidate) fit its own seed
+    candidates = {name: make_model(name, config, cv_seed, inner_folds=SELECTION_INNER_FOLDS) for name in names}
 
     horizons = sorted({int(h) for h in config.validation.horizons_days})
     cv = cross_validate(candidates, table, k=config.validation.folds, seed=cv_seed, horizons_days=horizons,
@@ -148,6 +157,16 @@ def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | N
                         concordance=concordance)
     else:
         choice = pinned(pin, choice_input, concordance)
+    return cv, choice
+
+
+def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | None = None) -> FitOutcome:
+    """Run the fit stage on ``table``; write its files into ``out_dir``."""
+    out_dir = Path(out_dir)
+    seed = config.model.seed if seed is None else seed
+    cv_seed, compare_seed, fit_seed = stage_seeds(seed)
+    cv, choice = run_choice(table, config, cv_seed)
+    main_h = max(cv.horizons_days)
 
     resampled = (None if config.validation.bootstrap_metrics == "all"
                  else ("c_harrell", "c_truncation", "c_time_dependent"))
@@ -161,7 +180,7 @@ def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | N
     files["calibration"] = str(_atomic.write_csv(out_dir / "calibration.csv", calibration))
 
     to_fit = list(dict.fromkeys([choice.name, *config_model_names(config)]))
-    fit_seeds = np.random.default_rng(fit_seed).integers(0, 2**31 - 1, size=len(to_fit))
+    fit_seeds = [final_fit_seed(fit_seed, name) for name in to_fit]
     golden = golden_rows(table)
     n_jobs = -1 if config.validation.jobs == 0 else max(1, config.validation.jobs)
     models = [make_model(name, config, int(s)) for name, s in zip(to_fit, fit_seeds)]
@@ -261,3 +280,74 @@ def describe_fit(outcome: FitOutcome) -> list[str]:
         lines.append(f"Uno's C counts failures before age {tau:g} days (tau). The IPCW metrics (Uno's C, AUC, "
                      "Brier score) assume no delayed entry; read them beside the truncation-aware C.")
     return lines
+
+
+class ChosenModel(SurvivalModel):
+    """The model ``wearcast fit`` would ship for a table: fitting it runs the choice.
+
+    ``fit(table)`` cross-validates the candidates on ``table`` and chooses as
+    :func:`fit_models` does with the same ``seed`` (or takes the model pinned in
+    ``[model] choose``, with no cross-validation), then fits the chosen
+    candidate with the final-fit seed :func:`fit_models` gives it, so its
+    predictions equal ``fit_models(table, config, out, seed=seed).main_model``'s.
+    The as-of backtest fits one per origin. Fitted attributes: ``chosen_``
+    (candidate name), ``choice_`` (:class:`~wearcast.selection.Choice`, None when
+    pinned) and ``model_`` (the fitted candidate); predictions are the candidate's.
+    """
+
+    name = "chosen"
+
+    def __init__(self, config: Config, seed: int = 0):
+        self.config = config
+        self.seed = int(seed)
+        self.chosen_: str | None = None
+        self.choice_: Choice | None = None
+        self.model_: SurvivalModel | None = None
+
+    def fit(self, table) -> "ChosenModel":
+        cv_seed, _, fit_seed = stage_seeds(self.seed)
+        if self.config.model.choose == "auto":
+            self.choice_ = run_choice(table, self.config, cv_seed)[1]
+            self.chosen_ = self.choice_.name
+        else:
+            self.chosen_ = candidate_for(self.config.model.choose, self.config)
+        self.model_ = make_model(self.chosen_, self.config, final_fit_seed(fit_seed, self.chosen_)).fit(table)
+        return self
+
+    def _fitted(self) -> SurvivalModel:
+        if self.model_ is None:
+            from wearcast.exceptions import ModelError
+
+            raise ModelError("chosen: the model is not fitted yet; call fit(table) first.")
+        return self.model_
+
+    def risk_score(self, X: pd.DataFrame) -> np.ndarray:
+        return self._fitted().risk_score(X)
+
+    def cumulative_hazard_at(self, X: pd.DataFrame, ages: np.ndarray) -> np.ndarray:
+        return self._fitted().cumulative_hazard_at(X, ages)
+
+    def cumulative_hazard(self, X: pd.DataFrame, times: np.ndarray) -> np.ndarray:
+        return self._fitted().cumulative_hazard(X, times)
+
+    def fail_probability(self, X: pd.DataFrame, age: np.ndarray, horizon_days: float) -> np.ndarray:
+        return self._fitted().fail_probability(X, age, horizon_days)
+
+    def fail_probabilities(self, X: pd.DataFrame, age: np.ndarray, horizons_days) -> np.ndarray:
+        return self._fitted().fail_probabilities(X, age, horizons_days)
+
+    def score_units(self, X: pd.DataFrame, age: np.ndarray, horizons_days):
+        return self._fitted().score_units(X, age, horizons_days)
+
+    def unfitted_copy(self, seed: int) -> "ChosenModel":
+        return ChosenModel(self.config, seed)
+
+
+def backtest_models(config: Config) -> dict:
+    """Name -> function(seed) returning an unfitted model, for :func:`wearcast.backtest.run_backtest`:
+    ``chosen`` (the choice run at each origin, or the pinned model), then the ``[model] fit``
+    models and the Cox baseline, fixed."""
+    names = list(dict.fromkeys(config_model_names(config) + ["cox"]))
+    factories = {"chosen": lambda seed: ChosenModel(config, seed)}
+    factories.update({name: (lambda seed, n=name: make_model(n, config, seed)) for name in names})
+    return factories
