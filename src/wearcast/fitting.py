@@ -7,14 +7,20 @@
 2. scores them with unit-grouped K-fold cross-validation
    (:func:`wearcast.validation.cross_validate`), boosted trees choosing their
    number of trees inside each fold;
-3. chooses one with the calibration guard and the one-standard-error rule;
+3. chooses one with the constant-score and calibration guards and the
+   one-standard-error rule, on the time-dependent C when the table has
+   start/stop rows and on the truncation-aware C otherwise
+   (:func:`run_choice`; :class:`ChosenModel` runs the same choice inside an
+   as-of backtest);
 4. compares every candidate with the Cox baseline (bootstrap intervals,
    paired differences) and writes ``metrics.json``, ``comparison.csv``,
    ``candidates.csv`` and ``calibration.csv``;
 5. fits the chosen model and the models listed in ``[model] fit`` on all the
    data and saves each as a bundle under ``models/<candidate>/``; writes the
    boosted cross-validation curve, the forest's out-of-bag curve and the
-   drivers' overall importance when those models exist.
+   drivers' overall importance when those models exist. Each final fit's seed
+   comes from the candidate's name (:func:`final_fit_seed`), so the fit list
+   moves no model's results.
 """
 
 from __future__ import annotations
