@@ -12,7 +12,9 @@ import pandas as pd
 import pytest
 
 import wearcast.backtest as backtest
+from _fleet import light_fleet
 from wearcast import LifeTable
+from wearcast._seeds import name_seed
 from wearcast.config import load_config
 from wearcast.scenario import generate_scenario
 
@@ -192,11 +194,76 @@ def test_forecast_interval_from_refits_is_the_ranked_list_interval(scenario):
     assert rows[f"observed_inside_forecast_{HORIZON}d"].tolist() == ((low <= observed) & (observed <= high)).tolist()
     assert int(result.summary[f"origins_observed_inside_forecast_{HORIZON}d"].iloc[0]) == int(
         rows[f"observed_inside_forecast_{HORIZON}d"].sum())
-    # recompute the later origin's interval by hand from the same seeds
-    seeds = np.random.default_rng(4).integers(0, 2**31 - 1, size=(2, 1, 2))
+    # recompute the later origin's interval by hand from the same seeds (model name and origin date)
     table = load_export(config, as_of=ORIGIN).table
-    model = factories["cox"](int(seeds[1, 0, 0])).fit(table)
-    refits = bootstrap_refits(table, model, 4, int(seeds[1, 0, 1]), [HORIZON], jobs=1, progress=False)
+    model = factories["cox"](name_seed(4, "cox", ORIGIN.toordinal(), 0)).fit(table)
+    refits = bootstrap_refits(table, model, 4, name_seed(4, "cox", ORIGIN.toordinal(), 1), [HORIZON], jobs=1,
+                              progress=False)
     assert list(pmf_quantile(refits.count_pmf[0][0], list(INTERVAL))) == [low.iloc[1], high.iloc[1]]
     plain = backtest.run_backtest(config, factories, ORIGIN, HORIZON, top_k=5, seed=4)
     assert f"forecast_{HORIZON}d_low" not in plain.per_origin.columns
+
+
+@pytest.fixture(scope="module")
+def auto_fleet(tmp_path_factory):
+    # The invented demo fleet with light settings and the automatic choice (plumbing data only).
+    return load_config(light_fleet(tmp_path_factory.mktemp("auto"), n_units=300, seed=11, choose="auto"))
+
+
+def test_the_chosen_model_is_what_fit_would_have_shipped(auto_fleet, tmp_path):
+    from wearcast.fitting import backtest_models, fit_models
+    from wearcast.io import load_export
+
+    factories = backtest_models(auto_fleet)
+    assert list(factories) == ["chosen", "boosted_d3", "cox"]  # the choice, then [model] fit, then Cox
+    result = backtest.run_backtest(auto_fleet, factories, ORIGIN, HORIZON, top_k=10, seed=3)
+    chosen = result.per_origin.set_index("model").loc["chosen"]
+    # fit as `wearcast fit` would have run on the export as it stood at the origin, same seed
+    table = load_export(auto_fleet, as_of=ORIGIN).table
+    outcome = fit_models(table, auto_fleet, tmp_path, seed=name_seed(3, "chosen", ORIGIN.toordinal(), 0))
+    assert chosen["candidate"] == outcome.chosen
+    open_rows = table.in_service()
+    shipped = outcome.main_model.fail_probability(open_rows.X, open_rows.exit, HORIZON)
+    backtested = result.units[result.units["model"] == "chosen"]["probability"].to_numpy()
+    assert np.array_equal(backtested, shipped)
+    assert result.summary.set_index("model").loc["chosen", "candidates"] == outcome.chosen
+
+
+def test_removing_a_model_changes_no_other_model(auto_fleet):
+    from wearcast.fitting import make_model
+
+    def factories(names):
+        return {n: (lambda seed, n=n: make_model(n, auto_fleet, seed)) for n in names}
+
+    def boosted(names, seed=3):
+        result = backtest.run_backtest(auto_fleet, factories(names), ORIGIN, HORIZON, top_k=10, seed=seed)
+        return result.units[result.units["model"] == "boosted_d2"]["probability"].to_numpy()
+
+    alone = boosted(["boosted_d2"])
+    assert np.array_equal(boosted(["cox", "boosted_d1", "boosted_d2"]), alone)
+    assert np.array_equal(boosted(["boosted_d2", "cox"]), alone)
+    # the boosted fit does depend on its seed (unit subsampling), so the check above can fail
+    assert not np.array_equal(boosted(["boosted_d2"], seed=4), alone)
+
+
+def test_window_rows_carry_the_readings_in_force():
+    # Unit A (in service at age 100) has two later rows in the window, with a new reading
+    # from age 130, and fails at 150; B's record ends at 200, past a 60-day window.
+    at_origin = LifeTable.from_frame(pd.DataFrame({
+        "unit_id": ["A", "B"], "entry_age": [0.0, 0.0], "exit_age": [100.0, 120.0], "failed": [False, False],
+        "x": [1.0, 2.0], "in_service": [True, True]}), ["x"])
+    later = LifeTable.from_frame(pd.DataFrame({
+        "unit_id": ["A", "A", "A", "B", "B"], "entry_age": [0.0, 100.0, 130.0, 0.0, 120.0],
+        "exit_age": [100.0, 130.0, 150.0, 120.0, 200.0], "failed": [False, False, True, False, False],
+        "x": [1.0, 1.0, 5.0, 2.0, 3.0]}), ["x"])
+    X, entry, exit_, event = backtest.window_rows(at_origin, later, 60)
+    assert X["x"].tolist() == [1.0, 5.0, 3.0]
+    assert entry.tolist() == [100.0, 130.0, 120.0] and exit_.tolist() == [130.0, 150.0, 180.0]
+    assert event.tolist() == [False, True, False]
+    # at A's failure (age 150) B is at risk with reading 3: A's reading then (5) is higher
+    from wearcast.metrics import time_dependent_c
+
+    assert time_dependent_c(entry, exit_, event, X["x"].to_numpy()).c == 1.0
+    per_origin = pd.DataFrame({"c_harrell_60d": [0.6], "c_time_dependent_60d": [0.7]})
+    assert backtest.gate_concordance(per_origin, 60)[0] == "c_time_dependent_60d"
+    assert backtest.gate_concordance(per_origin.drop(columns="c_time_dependent_60d"), 60)[0] == "c_harrell_60d"

@@ -76,6 +76,8 @@ def test_fit_prints_candidates_and_choice(tmp_path):
     result = _run("fit", str(config), "--out", str(tmp_path / "fit"))
     assert result.exit_code == 0, result.output
     assert "choice: boosted_d3 is pinned in the config" in result.output
+    # the scenario has monthly readings (start/stop rows): the terminal names the C used
+    assert "c_mean = time-dependent truncation-aware C" in result.output
     assert (tmp_path / "fit" / "metrics.json").exists()
 
 
@@ -94,6 +96,10 @@ def test_backtest_writes_tables(tmp_path):
     assert "precision_top20_91d" in result.output
     origins = pd.read_csv(tmp_path / "bt" / "backtest" / "backtest_origins.csv")
     assert sorted(origins["origin"].unique()) == ["2026-02-28", "2026-05-31"]
+    # the pinned model (boosted_d3) is backtested as 'chosen' beside the fixed [model] fit models
+    chosen = origins[origins["model"] == "chosen"]
+    assert len(chosen) == 2 and set(chosen["candidate"]) == {"boosted_d3"}
+    assert "c_time_dependent_91d" in origins.columns
 
 
 def test_report_on_a_missing_folder_exits_66(tmp_path):

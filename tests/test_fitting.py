@@ -10,11 +10,13 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from _fleet import set_key
-from wearcast.config import load_config
-from wearcast.fitting import fit_models
+from wearcast import LifeTable
+from wearcast.config import config_from_dict, load_config
+from wearcast.fitting import describe_fit, fit_models
 from wearcast.io import load_export
 from wearcast.scenario import generate_scenario
 
@@ -36,6 +38,9 @@ time_grid_points = 60
 folds = 3
 bootstrap = 5
 """
+
+LIGHT_MODEL = {"boosted": {"max_trees": 150, "learning_rate": 0.1, "folds": 3, "early_stopping_trees": 20},
+               "forest": {"n_trees": 30, "time_grid_points": 60}}
 
 
 def _fleet(folder, n_units, effects, seed=5) -> Path:
@@ -177,3 +182,63 @@ def test_fallback_and_worse_than_chance_are_warned_in_plain_words():
     assert said[1].startswith("The chosen model cox ranks held-out units worse than chance (cross-validated C 0.470")
     calibrated = summary.assign(c_mean=[0.62, 0.60], expected_failures=[10.5, 11.0])
     assert fit_warnings(choose(calibrated), {}, none_missing) == []
+def rising_reading_table(n_units: int = 300, seed: int = 1) -> LifeTable:
+    """Invented gearbox fleet, one row per month: an oil-iron reading that rises with running
+    age (each unit at its own wear rate) and a fixed load factor. True hazard per day:
+    exp(0.08 (iron - 20) + 0.5 load) / 2500, with the reading taken at the row's start held
+    for the month. About a third of the units enter the records late; follow-up ends early
+    at random (suspensions)."""
+    rng = np.random.default_rng(seed)
+    rows = []
+    for u in range(n_units):
+        rate = rng.lognormal(np.log(20.0), 0.35)  # iron ppm gained per year of running
+        load = rng.normal()
+        age = float(rng.choice([0.0, rng.uniform(0, 3 * 365)]))
+        end = age + rng.uniform(0.3, 1.0) * 48 * 30.0
+        while age < end:
+            stop = min(age + 30.0, end)
+            iron = rate * age / 365.0 + rng.normal(0, 2.0)
+            hazard = np.exp(0.08 * (iron - 20.0) + 0.5 * load) / 2500.0
+            t_fail = rng.exponential(1 / hazard)
+            rows.append((f"G{u:04d}", age, min(age + t_fail, stop), age + t_fail <= stop, iron, load))
+            if age + t_fail <= stop:
+                break
+            age = stop
+    frame = pd.DataFrame(rows, columns=["unit_id", "entry_age", "exit_age", "failed", "iron_ppm", "load"])
+    return LifeTable.from_frame(frame, ["iron_ppm", "load"])
+
+
+def test_rising_reading_is_chosen_on_the_readings_in_force(tmp_path):
+    from lifelines import CoxTimeVaryingFitter
+
+    from wearcast.models.cox import CoxBaseline
+
+    table = rising_reading_table()
+    # The Cox fit is right: same coefficients as lifelines' CoxTimeVaryingFitter on the rows.
+    frame = table.frame
+    ctv = CoxTimeVaryingFitter(penalizer=0.0).fit(
+        frame[["unit_id", "entry_age", "exit_age", "failed", "iron_ppm", "load"]], id_col="unit_id",
+        event_col="failed", start_col="entry_age", stop_col="exit_age")
+    cox = CoxBaseline(penalizer=0.0).fit(table)
+    assert np.allclose(cox.coefficients, ctv.params_[["iron_ppm", "load"]].to_numpy(), atol=1e-4)
+    assert abs(cox.coefficients[0] - 0.08) < 0.02 and abs(cox.coefficients[1] - 0.5) < 0.15  # the invented truth
+    config = config_from_dict({"model": {"seed": 5, "fit": [], **LIGHT_MODEL},
+                               "validation": {"folds": 3, "bootstrap": 5, "horizons_days": [90, 365]}},
+                              source="rising reading test")
+    outcome = fit_models(table, config, tmp_path)
+    cand = outcome.choice.candidates
+    assert outcome.choice.concordance == "c_time_dependent"
+    assert "time-dependent" in outcome.choice.reason
+    assert len(cand) == 6 and cand["eligible"].any()
+    # Scored on each unit's last row, even the Cox model reads below chance ...
+    last_row = outcome.comparison.set_index("model")["c_truncation"]
+    assert last_row["cox"] < 0.5
+    # ... on the readings in force at each failure every candidate ranks well; with the
+    # probabilities also taken on the readings in force, the log-linear truth's own form
+    # (Cox, or additive stumps) is calibrated and chosen.
+    assert cand["c_mean"].min() > 0.65
+    assert cand.loc["cox", "eligible"] and abs(cand.loc["cox", "calibration_ratio"] - 1) < 0.15
+    assert outcome.chosen in ("cox", "boosted_d1")
+    metrics = json.loads((tmp_path / "metrics.json").read_text())
+    assert metrics["choice"]["concordance"] == "c_time_dependent"
+    assert any("time-dependent" in line for line in describe_fit(outcome)[:1])

@@ -75,6 +75,9 @@ def test_worse_challenger_is_rejected_with_exit_3(good_champion):
     run_dir = registry / history[1]["run_dir"]
     gate = json.loads((run_dir / "gate.json").read_text())
     assert gate["c_challenger"] < gate["c_champion"] - 0.005
+    # the demo fleet has monthly readings (start/stop rows): the gate compares the same C as the choice
+    assert gate["concordance"] == "c_time_dependent_365d"
+    assert "time-dependent truncation-aware C" in gate["reasons"][0]
     assert (run_dir / "ranked_units.csv").exists() and (run_dir / "report.html").exists()
     changes = json.loads((run_dir / "monthly_changes.json").read_text())
     assert changes["previous_run"] == Path(history[0]["run_dir"]).name

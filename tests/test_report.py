@@ -584,3 +584,14 @@ def test_run_warnings_come_first_in_plain_words(tmp_path):
     # a run without warnings has no such section
     (tmp_path / "metrics.json").unlink()
     assert "read-first" not in _parse(render_report(report_inputs_from_run_folder(tmp_path))[0]).sections
+def test_report_names_the_concordance_that_chose_the_model(tmp_path):
+    comparison = pd.DataFrame({"model": ["cox", "forest_sqrt"], "c_truncation": [0.47, 0.48],
+                               "c_time_dependent": [0.74, 0.71], "c_time_dependent_low": [0.69, 0.64],
+                               "c_time_dependent_high": [0.76, 0.73]})
+    choice = {"chosen": "cox", "reason": "chose cox: highest cross-validated C.",
+              "concordance": "c_time_dependent",
+              "concordance_words": "time-dependent truncation-aware C (readings in force at each failure)"}
+    paths = build_report(ReportInputs(comparison=comparison, choice=choice), tmp_path)
+    text = " ".join(_parse(paths["report"].read_text(encoding="utf-8")).text)
+    assert "ranked on the cross-validated time-dependent truncation-aware C (readings in force" in text
+    assert "C with the readings in force at each failure" in text

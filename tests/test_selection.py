@@ -8,7 +8,7 @@ models within one standard error of the best, take the simplest.
 import pandas as pd
 import pytest
 
-from wearcast.selection import candidate_names, choose
+from wearcast.selection import as_dict, candidate_names, choose
 
 
 def _summary(rows):
@@ -55,3 +55,27 @@ def test_small_fleets_restrict_candidates(failures, expected):
     else:
         assert names == expected
         assert "fewer than 10 per covariate" in why
+
+
+def test_constant_score_candidate_is_not_eligible():
+    # A booster that kept no tree scores every unit alike: C exactly 0.5 with no spread over
+    # folds. Without the guard it beats honest candidates scored below 0.5 (issue #14).
+    s = _summary([("cox", 0.47, 0.02, 50, 50), ("boosted_d1", 0.50, 0.0, 50, 50), ("forest_sqrt", 0.46, 0.02, 49, 50)])
+    s["constant_score"] = [False, True, False]
+    choice = choose(s)
+    assert choice.name == "cox"
+    assert not choice.candidates.loc["boosted_d1", "eligible"]
+    assert "boosted_d1 gave every held-out unit the same score" in choice.reason
+    # and it is not the fallback when nothing is calibrated either
+    s["expected_failures"] = [90, 50, 95]
+    assert choose(s).name == "cox"
+
+
+def test_choice_names_the_concordance_it_used():
+    s = _summary([("cox", 0.60, 0.01, 50, 50), ("boosted_d2", 0.70, 0.01, 52, 50)])
+    words = "time-dependent truncation-aware C (readings in force at each failure)"
+    choice = choose(s, concordance=("c_time_dependent", words))
+    assert choice.concordance == "c_time_dependent" and words in choice.reason
+    record = as_dict(choice)
+    assert record["concordance"] == "c_time_dependent" and record["concordance_words"] == words
+    assert as_dict(choose(s))["concordance"] == "c_truncation"

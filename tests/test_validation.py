@@ -17,9 +17,12 @@ from wearcast import LifeTable
 from wearcast.exceptions import ConfigError
 from wearcast.validation import (
     compare_models,
+    constant_score_models,
     cross_validate,
     format_table,
+    choice_concordance,
     grouped_folds,
+    has_start_stop,
     score_episodes,
     write_comparison,
 )
@@ -113,6 +116,61 @@ def test_cross_validated_concordance_matches_lifelines_and_scikit_survival():
     assert any("delayed entry" in note for note in result.notes)
 
 
+def _stanford_table() -> LifeTable:
+    # Source: Stanford heart transplant start/stop data shipped by lifelines (Crowley and Hu 1977).
+    from lifelines.datasets import load_stanford_heart_transplants
+
+    d = load_stanford_heart_transplants()
+    frame = d[["age", "year", "surgery", "transplant"]].astype(float).assign(
+        unit_id=d["id"].astype(str), entry_age=d["start"].astype(float), exit_age=d["stop"].astype(float),
+        failed=d["event"].astype(bool))
+    return LifeTable.from_frame(frame, ["age", "year", "surgery", "transplant"])
+
+
+def test_time_dependent_c_per_fold_matches_lifelines_time_varying_cox():
+    # Independent pipeline per fold: lifelines CoxTimeVaryingFitter on the training rows, every
+    # held-out row scored with its own covariates, then a patient-by-patient count of the pairs
+    # (each failure against the patients under follow-up that day, through their row in force).
+    from lifelines import CoxTimeVaryingFitter
+
+    cox = pytest.importorskip("wearcast.models.cox")
+    table = _stanford_table()
+    assert has_start_stop(table) and not has_start_stop(_rossi_table())
+    assert choice_concordance(True)[0] == "c_time_dependent" and choice_concordance(False)[0] == "c_truncation"
+    result = cross_validate({"cox": cox.CoxBaseline(penalizer=0.0)}, table, k=3, seed=2, horizons_days=[90])
+    assert result.time_dependent and "c_time_dependent" in result.summary.columns
+    frame = table.frame.assign(pid=table.frame["unit_id"])
+    cov = ["age", "year", "surgery", "transplant"]
+    for fold, (train, test) in enumerate(result.folds, start=1):
+        ctv = CoxTimeVaryingFitter(penalizer=0.0).fit(
+            frame.iloc[train][cov + ["pid", "entry_age", "exit_age", "failed"]], id_col="pid", event_col="failed",
+            start_col="entry_age", stop_col="exit_age")
+        held = frame.iloc[test]
+        risk = np.asarray(ctv.predict_partial_hazard(held[cov]), float).ravel()
+        start, stop = held["entry_age"].to_numpy(float), held["exit_age"].to_numpy(float)
+        event, pid = held["failed"].to_numpy(bool), held["pid"].to_numpy()
+        con = comparable = 0.0
+        for i in np.flatnonzero(event):
+            for j in np.flatnonzero((pid != pid[i]) & (start < stop[i]) & (stop[i] <= stop)):
+                if event[j] and stop[j] == stop[i]:
+                    continue
+                comparable += 1
+                con += 1.0 if risk[i] > risk[j] else 0.5 if risk[i] == risk[j] else 0.0
+        row = result.per_fold[result.per_fold["fold"] == fold].iloc[0]
+        # same coefficients to optimiser precision, so the pair order agrees exactly here
+        assert row["c_time_dependent"] == pytest.approx(con / comparable, abs=1e-6)
+    comparison = compare_models(result, bootstrap=20, seed=1, resampled_columns=["c_harrell", "c_time_dependent"])
+    row = comparison.iloc[0]
+    assert row["c_time_dependent_low"] < row["c_time_dependent"] < row["c_time_dependent_high"]
+    assert comparison.attrs["interval_method"]["c_time_dependent"] == "bootstrap of held-out units"
+
+
+def test_one_row_per_life_has_no_time_dependent_column():
+    cox = pytest.importorskip("wearcast.models.cox")
+    result = cross_validate({"cox": cox.CoxBaseline()}, _rossi_table(), k=3, seed=5, horizons_days=[90])
+    assert not result.time_dependent and "c_time_dependent" not in result.per_fold.columns
+
+
 def test_comparison_table_intervals_and_paired_differences(tmp_path):
     cox = pytest.importorskip("wearcast.models.cox")
     table = _rossi_table()
@@ -174,3 +232,17 @@ def test_parallel_folds_give_the_same_results():
     pd.testing.assert_frame_equal(serial.per_fold, parallel.per_fold)
     pd.testing.assert_frame_equal(compare_models(serial, bootstrap=8, seed=3, jobs=1),
                                   compare_models(serial, bootstrap=8, seed=3, jobs=2))
+
+
+def test_booster_that_keeps_no_split_is_flagged_constant():
+    # A leaf must hold more failures than Rossi has (114), so every tree is a single leaf and
+    # the held-out score is one value: C exactly 0.5 (Harrell's tie rule, common practice).
+    cox = pytest.importorskip("wearcast.models.cox")
+    from wearcast.models.boosted import BoostedSurvivalTrees, BoostSettings
+
+    flat = BoostedSurvivalTrees(BoostSettings(min_events_per_leaf=1000, max_trees=5, folds=2, early_stopping_trees=2))
+    result = cross_validate({"cox": cox.CoxBaseline(), "boosted_d1": flat}, _rossi_table(), k=3, seed=1,
+                            horizons_days=[90])
+    assert constant_score_models(result) == {"cox": False, "boosted_d1": True}
+    summary = result.summary.set_index("model")
+    assert summary.loc["boosted_d1", "c_truncation"] == 0.5 and summary.loc["boosted_d1", "c_truncation_se"] == 0.0

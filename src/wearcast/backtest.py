@@ -12,7 +12,11 @@ months back):
    not failed and are censored at their decommission age for the C index.
 
 Scores per origin and model: Harrell's C of the predicted probability against
-the time to failure within the window; expected failures Σp with the 2.5 % and
+the time to failure within the window; when the life table has start/stop rows
+also the time-dependent C over the window (every row of the window scored with
+the readings in force on it, each failure against the units at risk at its
+age, :func:`wearcast.metrics.time_dependent_c`), which the promotion gate then
+uses (:func:`gate_concordance`); expected failures Σp with the 2.5 % and
 97.5 % quantiles of the Poisson-binomial count, against observed failures;
 precision of the top-k list (share of the k highest-probability units that
 failed) and its lift over a random list (the overall failure share), over an
@@ -24,6 +28,14 @@ the data as of ``D`` (:func:`wearcast.resample.bootstrap_refits`), the
 failure-count law averaged over refits (chance and model uncertainty
 together), and its 5 % and 95 % quantiles; the observed count is checked
 against that 90 % interval.
+
+Which models: :func:`wearcast.fitting.backtest_models` gives ``chosen`` (the
+model choice run on the data as of each origin, as ``wearcast fit`` would run
+it then, or the pinned model; column ``candidate`` says which one it picked)
+beside the fixed ``[model] fit`` models and the Cox baseline. Every (origin,
+model) seed comes from the model's name and the origin's date
+(:func:`wearcast._seeds.name_seed`), so adding or removing a model, or an
+origin, changes no other result.
 """
 
 from __future__ import annotations
@@ -39,11 +51,13 @@ import pandas as pd
 
 from wearcast import _atomic
 from wearcast._poisson_binomial import count_pmf, pmf_quantile
+from wearcast._seeds import name_seed
 from wearcast.config import Config
 from wearcast.exceptions import ConfigError, ModelError
 from wearcast.io import load_export
 from wearcast.lifetable import LifeTable
-from wearcast.metrics import harrell_c
+from wearcast.episodes import has_start_stop
+from wearcast.metrics import harrell_c, time_dependent_c
 from wearcast.models.base import SurvivalModel
 from wearcast.modes import clean_modes, forecast_for_units, mode_shares
 from wearcast.ranking import probability_column
@@ -89,6 +103,7 @@ def _names(horizon_days: int, top_k: int) -> dict[str, str]:
     h, k = int(horizon_days), int(top_k)
     return {
         "c": f"c_harrell_{h}d",
+        "c_td": f"c_time_dependent_{h}d",
         "expected": f"expected_failures_{h}d",
         "observed": f"observed_failures_{h}d",
         "inside": f"observed_inside_interval_{h}d",
@@ -139,6 +154,39 @@ def window_outcomes(at_origin: LifeTable, later: LifeTable, horizon_days: float)
     out["days_observed"] = seen
     out["mode"] = np.where(failed, clean_modes(keys["_pos"].map(fail_mode)).to_numpy(), "")
     return out
+
+
+def window_rows(at_origin: LifeTable, later: LifeTable, horizon_days: float):
+    """The rows of the window ``(age at the origin, + horizon_days]`` of every life in service at the origin.
+
+    Returns ``(X, entry, exit, event)``: the rows of ``later`` (the table as it stood at
+    origin + horizon) cut to the window, each with the covariates in force on it; a row's
+    failure counts only inside the window.
+    """
+    open_rows = at_origin.in_service().frame
+    keys = pd.DataFrame({"unit_id": open_rows["unit_id"].to_numpy(), "life": open_rows["life"].to_numpy(),
+                         "age_days": open_rows["exit_age"].to_numpy(float)})
+    f = later.frame.assign(_pos=np.arange(later.n_rows))[["unit_id", "life", "entry_age", "exit_age", "failed",
+                                                            "_pos"]]
+    joined = keys.merge(f, on=["unit_id", "life"], how="inner")
+    end = joined["age_days"].to_numpy(float) + float(horizon_days)
+    keep = (joined["exit_age"].to_numpy(float) > joined["age_days"].to_numpy(float)) & (
+        joined["entry_age"].to_numpy(float) < end)
+    joined, end = joined[keep], end[keep]
+    entry = np.maximum(joined["entry_age"].to_numpy(float), joined["age_days"].to_numpy(float))
+    exit_ = np.minimum(joined["exit_age"].to_numpy(float), end)
+    event = joined["failed"].to_numpy(bool) & (joined["exit_age"].to_numpy(float) <= end)
+    X = later.X.iloc[joined["_pos"].to_numpy()].reset_index(drop=True)
+    return X, entry, exit_, event
+
+
+def gate_concordance(per_origin: pd.DataFrame, horizon_days: int) -> tuple[str, str]:
+    """``(column, words)`` of the C the promotion gate compares: the time-dependent C over the
+    window when the backtest has it (start/stop data), Harrell's C of the probabilities otherwise."""
+    names = _names(horizon_days, 1)
+    if names["c_td"] in per_origin and per_origin[names["c_td"]].notna().all():
+        return names["c_td"], "time-dependent truncation-aware C (readings in force at each failure)"
+    return names["c"], "Harrell's C of the predicted probabilities"
 
 
 def _top(values: np.ndarray, k: int) -> np.ndarray:
@@ -196,8 +244,9 @@ def run_backtest(
 
     ``model_factories``: name -> function(seed) returning an unfitted model;
     the name ``"cox"`` is the baseline for the ``_vs_cox`` lift. Seeds for
-    every (origin, model) fit are drawn up front from
-    ``numpy.random.default_rng(seed)``. Raises :class:`ConfigError` when an
+    every (origin, model) fit and its refits come from ``seed``, the model's
+    name and the origin's date (:func:`wearcast._seeds.name_seed`), so the
+    other models and origins listed never change them. Raises :class:`ConfigError` when an
     origin plus the horizon passes the export date (``fleet.as_of``, or the
     export's latest date when that is unset). ``refits``: bootstrap refits
     per (origin, model) for the fleet forecast's 90 % interval (0 = skip);
@@ -210,7 +259,6 @@ def run_backtest(
         raise ConfigError(f"horizon_days and top_k must be at least 1; got {horizon_days} and {top_k}.")
     dates = origin_dates(origin, every_months, origins)
     names = list(model_factories)
-    seeds = np.random.default_rng(seed).integers(0, 2**31 - 1, size=(len(dates), len(names), 2))
     export_end = config.fleet.as_of
     if export_end is None:
         # only the export's last date is used from this full read, never its records
@@ -232,19 +280,26 @@ def run_backtest(
         open_rows = fit_table.in_service()
         X = open_rows.X
         age = open_rows.exit
-        for j, name in enumerate(names):
-            model = model_factories[name](int(seeds[i, j, 0]))
+        window = window_rows(fit_table, later, horizon_days) if has_start_stop(fit_table) else None
+        for name in names:
+            model = model_factories[name](name_seed(seed, name, day.toordinal(), 0))
             try:
                 model.fit(fit_table)
+                # a chosen model's refits refit the candidate it chose (tuned choices fixed), not the choice
                 forecast = {} if refits <= 0 else _forecast_interval(
-                    fit_table, model, refits, int(seeds[i, j, 1]), horizon_days, refit_jobs,
-                    int(outcome["failed"].sum()))
+                    fit_table, getattr(model, "model_", None) or model, refits,
+                    name_seed(seed, name, day.toordinal(), 1), horizon_days, refit_jobs, int(outcome["failed"].sum()))
             except ModelError as exc:
                 raise ModelError(f"backtest origin {day}, model {name}: {exc}") from exc
             p = np.asarray(model.fail_probability(X, age, horizon_days), float)
-            rows.append({"origin": day, "model": name, "fit_rows": fit_table.n_rows,
-                         "fit_failures": fit_table.n_failures,
-                         **score_origin(p, outcome, horizon_days, top_k), **forecast})
+            td = {}
+            if window is not None:
+                X_w, entry_w, exit_w, event_w = window
+                risk_w = np.asarray(model.risk_score(X_w), float) if len(X_w) else np.zeros(0)
+                td = {_names(horizon_days, top_k)["c_td"]: time_dependent_c(entry_w, exit_w, event_w, risk_w).c}
+            rows.append({"origin": day, "model": name, "candidate": getattr(model, "chosen_", None) or name,
+                         "fit_rows": fit_table.n_rows, "fit_failures": fit_table.n_failures,
+                         **score_origin(p, outcome, horizon_days, top_k), **td, **forecast})
             unit_frames.append(outcome.assign(origin=day, model=name, probability=p))
             mode_rows += [{"origin": day, "model": name, **r}
                           for r in mode_check(fit_table, shares, p, outcome, horizon_days, config.ranking.modes_by)]
@@ -335,13 +390,19 @@ def _summarise(per_origin: pd.DataFrame, models: list[str], horizon_days: int, t
         failures = float(part[names["observed"]].sum())
         precision = hits / k.sum() if k.sum() else float("nan")
         pooled[name] = precision
-        c = part[names["c"]].to_numpy(float)
-        c = c[np.isfinite(c)]
+        concordance = {}
+        for key in ("c", "c_td"):
+            if names[key] not in part:
+                continue
+            c = part[names[key]].to_numpy(float)
+            c = c[np.isfinite(c)]
+            concordance[names[key]] = float(c.mean()) if len(c) else float("nan")
+            concordance[f"{names[key]}_se"] = float(c.std(ddof=1) / np.sqrt(len(c))) if len(c) > 1 else float("nan")
         out.append({
             "model": name,
             "origins": len(part),
-            names["c"]: float(c.mean()) if len(c) else float("nan"),
-            f"{names['c']}_se": float(c.std(ddof=1) / np.sqrt(len(c))) if len(c) > 1 else float("nan"),
+            "candidates": ", ".join(dict.fromkeys(part["candidate"].astype(str))),
+            **concordance,
             names["expected"]: float(part[names["expected"]].sum()),
             names["observed"]: int(failures),
             f"origins_{names['inside']}": int(part[names["inside"]].sum()),

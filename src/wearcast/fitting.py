@@ -7,14 +7,20 @@
 2. scores them with unit-grouped K-fold cross-validation
    (:func:`wearcast.validation.cross_validate`), boosted trees choosing their
    number of trees inside each fold;
-3. chooses one with the calibration guard and the one-standard-error rule;
+3. chooses one with the constant-score and calibration guards and the
+   one-standard-error rule, on the time-dependent C when the table has
+   start/stop rows and on the truncation-aware C otherwise
+   (:func:`run_choice`; :class:`ChosenModel` runs the same choice inside an
+   as-of backtest);
 4. compares every candidate with the Cox baseline (bootstrap intervals,
    paired differences) and writes ``metrics.json``, ``comparison.csv``,
    ``candidates.csv`` and ``calibration.csv``;
 5. fits the chosen model and the models listed in ``[model] fit`` on all the
    data and saves each as a bundle under ``models/<candidate>/``; writes the
    boosted cross-validation curve, the forest's out-of-bag curve and the
-   drivers' overall importance when those models exist.
+   drivers' overall importance when those models exist. Each final fit's seed
+   comes from the candidate's name (:func:`final_fit_seed`), so the fit list
+   moves no model's results.
 
 A candidate whose fit cannot be trusted (today: a Cox fit that does not
 converge, :class:`wearcast.exceptions.CoxConvergenceError`) is left out and
@@ -35,13 +41,21 @@ import pandas as pd
 from joblib import Parallel, delayed
 
 from wearcast import _atomic
+from wearcast._seeds import name_seed
 from wearcast.config import Config
 from wearcast.exceptions import ConfigError, CoxConvergenceError
 from wearcast.lifetable import LifeTable
 from wearcast.metrics import horizon_calibration
 from wearcast.models.base import SurvivalModel
 from wearcast.selection import CANDIDATE_ORDER, Choice, as_dict, candidate_names, choose, pinned
-from wearcast.validation import compare_models, cross_validate, format_table, write_comparison
+from wearcast.validation import (
+    choice_concordance,
+    compare_models,
+    constant_score_models,
+    cross_validate,
+    format_table,
+    write_comparison,
+)
 
 MODELS_DIR = "models"
 
@@ -115,13 +129,23 @@ class FitOutcome:
         return self.models[self.chosen]
 
 
-def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | None = None) -> FitOutcome:
-    """Run the fit stage on ``table``; write its files into ``out_dir``."""
-    out_dir = Path(out_dir)
-    seed = config.model.seed if seed is None else seed
+def stage_seeds(seed: int) -> tuple[int, int, int]:
+    """``(cross-validation, comparison, final fits)`` seeds of a fit stage run with ``seed``."""
     rng = np.random.default_rng(seed)
     cv_seed, compare_seed, fit_seed = (int(s) for s in rng.integers(0, 2**31 - 1, size=3))
+    return cv_seed, compare_seed, fit_seed
 
+
+def final_fit_seed(fit_seed: int, name: str) -> int:
+    """The final fit's seed of candidate ``name``: from the name, so the fit list moves no other model."""
+    return name_seed(fit_seed, name)
+
+
+def run_choice(table: LifeTable, config: Config, cv_seed: int):
+    """Cross-validate the candidates on ``table`` and choose: ``(CVResult, Choice)``. Writes nothing.
+
+    A Cox candidate whose fit does not converge in a fold is left out (unless pinned) and
+    listed with its reason in the choice's ``failed`` column."""
     pin = None if config.model.choose == "auto" else candidate_for(config.model.choose, config)
     if pin is None:
         names, note = candidate_names(table.n_failures, len(table.covariates))
@@ -129,7 +153,8 @@ def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | N
     else:
         names, note = ["cox", pin], None
     names = list(dict.fromkeys(["cox", *names]))
-    candidates = {name: make_model(name, config, seed, inner_folds=SELECTION_INNER_FOLDS) for name in names}
+    # only the settings matter: cross_validate gives every (fold, candidate) fit its own seed
+    candidates = {name: make_model(name, config, cv_seed, inner_folds=SELECTION_INNER_FOLDS) for name in names}
 
     horizons = sorted({int(h) for h in config.validation.horizons_days})
     failed: dict[str, str] = {}
@@ -145,25 +170,42 @@ def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | N
             candidates = {k: v for k, v in candidates.items() if k != "cox"}
     summary = cv.summary.set_index("model")
     main_h = max(horizons)
+    # start/stop rows: rank on the time-dependent C (readings in force at each failure)
+    concordance = choice_concordance(cv.time_dependent)
+    c_col = concordance[0]
     choice_input = pd.DataFrame({
-        "c_mean": summary["c_truncation"],
-        "c_se": summary["c_truncation_se"],
+        "c_mean": summary[c_col],
+        "c_se": summary[f"{c_col}_se"],
         "expected_failures": summary[f"expected_failures_{main_h}d"],
         "observed_failures": summary[f"observed_failures_{main_h}d"],
+        "constant_score": pd.Series(constant_score_models(cv)),
     })
     if pin is None:
-        choice = choose(choice_input, calibration_share=config.validation.calibration_share, note=note)
+        choice = choose(choice_input, calibration_share=config.validation.calibration_share, note=note,
+                        concordance=concordance)
     else:
-        choice = pinned(pin, choice_input)
-    choice = _with_failed(choice, failed)
-    missing = missing_values(table)
+        choice = pinned(pin, choice_input, concordance)
+    return cv, _with_failed(choice, failed)
 
-    resampled = None if config.validation.bootstrap_metrics == "all" else ("c_harrell", "c_truncation")
+
+def fit_models(table: LifeTable, config: Config, out_dir: Path, *, seed: int | None = None) -> FitOutcome:
+    """Run the fit stage on ``table``; write its files into ``out_dir``."""
+    out_dir = Path(out_dir)
+    seed = config.model.seed if seed is None else seed
+    cv_seed, compare_seed, fit_seed = stage_seeds(seed)
+    cv, choice = run_choice(table, config, cv_seed)
+    failed = {str(name): str(why) for name, why in choice.candidates["failed"].items() if why}
+    missing = missing_values(table)
+    main_h = max(cv.horizons_days)
+
+    resampled = (None if config.validation.bootstrap_metrics == "all"
+                 else ("c_harrell", "c_truncation", "c_time_dependent"))
     comparison = compare_models(cv, bootstrap=config.validation.bootstrap, seed=compare_seed,
                                 resampled_columns=resampled, jobs=config.validation.jobs)
     calibration = _calibration(cv, [choice.name, "cox"], main_h)
+
     to_fit = list(dict.fromkeys([choice.name, *config_model_names(config)]))
-    fit_seeds = np.random.default_rng(fit_seed).integers(0, 2**31 - 1, size=len(to_fit))
+    fit_seeds = [final_fit_seed(fit_seed, name) for name in to_fit]
     golden = golden_rows(table)
     n_jobs = -1 if config.validation.jobs == 0 else max(1, config.validation.jobs)
     models = [make_model(name, config, int(s)) for name, s in zip(to_fit, fit_seeds)]
@@ -250,6 +292,8 @@ def fit_warnings(choice: Choice, failed: dict[str, str], missing: dict) -> list[
     return out
 
 
+
+
 def _readable_summary(model, fleet: LifeTable, out_dir: Path) -> dict[str, str]:
     """readable_rules.txt: a depth-3 tree summarising the chosen model over the fleet."""
     from wearcast.exceptions import ModelError
@@ -328,7 +372,8 @@ def describe_fit(outcome: FitOutcome) -> list[str]:
     cols = [c for c in ("candidate", "c_mean", "c_se", "calibration_ratio", "eligible", "within_1se")
             if c in outcome.choice.candidates.reset_index(names="candidate").columns]
     table = outcome.choice.candidates.reset_index(names="candidate").loc[:, cols]
-    lines = ["candidates (unit-grouped cross-validation, truncation-aware C):", format_table(table).rstrip(),
+    lines = [f"candidates (unit-grouped cross-validation, c_mean = {outcome.choice.concordance_words}, "
+             f"column {outcome.choice.concordance}):", format_table(table).rstrip(),
              f"choice: {outcome.choice.reason}"]
     lines += [f"warning: {text}" for text in outcome.warnings]
     comp = outcome.comparison
@@ -340,3 +385,74 @@ def describe_fit(outcome: FitOutcome) -> list[str]:
         lines.append(f"Uno's C counts failures before age {tau:g} days (tau). The IPCW metrics (Uno's C, AUC, "
                      "Brier score) assume no delayed entry; read them beside the truncation-aware C.")
     return lines
+
+
+class ChosenModel(SurvivalModel):
+    """The model ``wearcast fit`` would ship for a table: fitting it runs the choice.
+
+    ``fit(table)`` cross-validates the candidates on ``table`` and chooses as
+    :func:`fit_models` does with the same ``seed`` (or takes the model pinned in
+    ``[model] choose``, with no cross-validation), then fits the chosen
+    candidate with the final-fit seed :func:`fit_models` gives it, so its
+    predictions equal ``fit_models(table, config, out, seed=seed).main_model``'s.
+    The as-of backtest fits one per origin. Fitted attributes: ``chosen_``
+    (candidate name), ``choice_`` (:class:`~wearcast.selection.Choice`, None when
+    pinned) and ``model_`` (the fitted candidate); predictions are the candidate's.
+    """
+
+    name = "chosen"
+
+    def __init__(self, config: Config, seed: int = 0):
+        self.config = config
+        self.seed = int(seed)
+        self.chosen_: str | None = None
+        self.choice_: Choice | None = None
+        self.model_: SurvivalModel | None = None
+
+    def fit(self, table) -> "ChosenModel":
+        cv_seed, _, fit_seed = stage_seeds(self.seed)
+        if self.config.model.choose == "auto":
+            self.choice_ = run_choice(table, self.config, cv_seed)[1]
+            self.chosen_ = self.choice_.name
+        else:
+            self.chosen_ = candidate_for(self.config.model.choose, self.config)
+        self.model_ = make_model(self.chosen_, self.config, final_fit_seed(fit_seed, self.chosen_)).fit(table)
+        return self
+
+    def _fitted(self) -> SurvivalModel:
+        if self.model_ is None:
+            from wearcast.exceptions import ModelError
+
+            raise ModelError("chosen: the model is not fitted yet; call fit(table) first.")
+        return self.model_
+
+    def risk_score(self, X: pd.DataFrame) -> np.ndarray:
+        return self._fitted().risk_score(X)
+
+    def cumulative_hazard_at(self, X: pd.DataFrame, ages: np.ndarray) -> np.ndarray:
+        return self._fitted().cumulative_hazard_at(X, ages)
+
+    def cumulative_hazard(self, X: pd.DataFrame, times: np.ndarray) -> np.ndarray:
+        return self._fitted().cumulative_hazard(X, times)
+
+    def fail_probability(self, X: pd.DataFrame, age: np.ndarray, horizon_days: float) -> np.ndarray:
+        return self._fitted().fail_probability(X, age, horizon_days)
+
+    def fail_probabilities(self, X: pd.DataFrame, age: np.ndarray, horizons_days) -> np.ndarray:
+        return self._fitted().fail_probabilities(X, age, horizons_days)
+
+    def score_units(self, X: pd.DataFrame, age: np.ndarray, horizons_days):
+        return self._fitted().score_units(X, age, horizons_days)
+
+    def unfitted_copy(self, seed: int) -> "ChosenModel":
+        return ChosenModel(self.config, seed)
+
+
+def backtest_models(config: Config) -> dict:
+    """Name -> function(seed) returning an unfitted model, for :func:`wearcast.backtest.run_backtest`:
+    ``chosen`` (the choice run at each origin, or the pinned model), then the ``[model] fit``
+    models and the Cox baseline, fixed."""
+    names = list(dict.fromkeys(config_model_names(config) + ["cox"]))
+    factories = {"chosen": lambda seed: ChosenModel(config, seed)}
+    factories.update({name: (lambda seed, n=name: make_model(n, config, seed)) for name in names})
+    return factories

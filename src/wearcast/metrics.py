@@ -141,6 +141,26 @@ def truncation_aware_c(entry: np.ndarray, exit: np.ndarray, event: np.ndarray, r
     return Concordance(out["c"], out["concordant"], out["discordant"], out["tied_risk"], out["comparable"])
 
 
+def time_dependent_c(entry: np.ndarray, exit: np.ndarray, event: np.ndarray, risk: np.ndarray) -> Concordance:
+    """Time-dependent, truncation-aware concordance on start/stop rows.
+
+    Arrays of shape (n_rows,), one entry per row of a life table (not per
+    life): ``entry``/``exit`` the row's ages in days, ``event`` whether the
+    row ends in a failure, ``risk`` the model's score of *that row's*
+    covariates (the readings in force over ``(entry, exit]``). Each failure at
+    age ``t`` is compared with every other life under observation at ``t``,
+    through the one row of that life in force at ``t`` (``entry < t <= exit``),
+    so every unit is judged on the readings it had when the failure happened,
+    never on later ones. A life's rows must not overlap (the life table
+    guarantees it).
+
+    This is the truncation-aware count applied to rows: with one row per life
+    it equals :func:`truncation_aware_c` on the lives (and Harrell's C when
+    nobody enters late).
+    """
+    return truncation_aware_c(entry, exit, event, risk)
+
+
 def choose_tau(
     train_exit: np.ndarray,
     train_event: np.ndarray,

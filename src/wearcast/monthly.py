@@ -194,7 +194,7 @@ def _choice_metrics(fit) -> dict:
 
 def promotion_gate(config: Config, champion, challenger) -> dict:
     """Score both models' settings on the most recent holdout; decide promotion."""
-    from wearcast.backtest import run_backtest
+    from wearcast.backtest import gate_concordance, run_backtest
 
     h = int(config.monthly.holdout_days)
     end = config.fleet.as_of
@@ -207,7 +207,7 @@ def promotion_gate(config: Config, champion, challenger) -> dict:
                      top_k=config.ranking.top_k, seed=config.model.seed).per_origin
         for role, model in (("champion", champion), ("challenger", challenger))
     ]).set_index("model")
-    c_col, e_col, o_col = f"c_harrell_{h}d", f"expected_failures_{h}d", f"observed_failures_{h}d"
+    (c_col, c_words), e_col, o_col = gate_concordance(rows, h), f"expected_failures_{h}d", f"observed_failures_{h}d"
     c_champ, c_chall = float(rows.loc["champion", c_col]), float(rows.loc["challenger", c_col])
     expected, observed = float(rows.loc["challenger", e_col]), float(rows.loc["challenger", o_col])
     low, high = float(rows.loc["challenger", f"{e_col}_low"]), float(rows.loc["challenger", f"{e_col}_high"])
@@ -215,7 +215,7 @@ def promotion_gate(config: Config, champion, challenger) -> dict:
     reasons = []
     c_ok = not (c_chall < c_champ - tol)
     reasons.append(
-        f"concordance on the holdout since {origin}: challenger {c_chall:.3f}, champion {c_champ:.3f} "
+        f"concordance ({c_words}) on the holdout since {origin}: challenger {c_chall:.3f}, champion {c_champ:.3f} "
         f"({'within' if c_ok else 'worse than'} the tolerance {tol:g})"
     )
     ratio = expected / observed if observed > 0 else float("inf") if expected > 0 else 1.0
@@ -225,7 +225,7 @@ def promotion_gate(config: Config, champion, challenger) -> dict:
         f"(95 % interval {low:.0f}–{high:.0f}; {'within' if cal_ok else 'outside'} the bound {bound:g})"
     )
     return {"promote": bool(c_ok and cal_ok), "reasons": reasons, "holdout_start": origin.isoformat(),
-            "holdout_days": h, "c_champion": c_champ, "c_challenger": c_chall,
+            "holdout_days": h, "concordance": c_col, "c_champion": c_champ, "c_challenger": c_chall,
             "expected_challenger": expected, "observed": observed}
 
 

@@ -14,6 +14,19 @@ Harrell's C and the truncation-aware C (age scale), Uno's C up to τ (one τ
 for the whole run, so the column name can carry it), cumulative/dynamic AUC
 and horizon calibration on the scale "days since the episode's entry", and the
 integrated Brier score. See ``docs/metrics.md``.
+
+Start/stop data (some life has more than one row, :func:`has_start_stop`):
+the last-row scoring above judges every unit on the readings at the end of
+its follow-up, so a reading that rises with wear makes a correct model look
+worse than chance. There every held-out *row* is also scored with the
+covariates in force on it and the fold gets ``c_time_dependent``
+(:func:`wearcast.metrics.time_dependent_c`): each failure against the lives
+at risk at its age, with the readings they had then; and the horizon
+probabilities behind calibration and the expected failure counts are taken
+with the readings in force over the window (the last one held to its end,
+:mod:`wearcast._metrics_in_force`) instead of the last row's throughout.
+:func:`choice_concordance` says which C the model choice and the promotion
+gate use. Episodes and folds live in :mod:`wearcast.episodes`.
 """
 
 from __future__ import annotations
@@ -29,10 +42,24 @@ from joblib import Parallel, delayed
 
 from wearcast import _atomic
 from wearcast._metrics_concordance import truncated_concordance_counts
-from wearcast.exceptions import ConfigError, ModelError
+from wearcast._metrics_in_force import in_force_probability, window_ends
+from wearcast._seeds import name_seed
+from wearcast.episodes import (  # noqa: F401 - re-exported: validation is where callers look
+    TIME_DEPENDENT_WORDS,
+    TRUNCATION_WORDS,
+    Episodes,
+    choice_concordance,
+    grouped_folds,
+    has_start_stop,
+    row_episodes,
+    score_episodes,
+    split_fold,
+)
+from wearcast.exceptions import ModelError
 from wearcast.lifetable import LifeTable
 from wearcast.metrics import (
     IPCW_ENTRY_NOTE,
+    time_dependent_c,
     choose_tau,
     horizon_calibration,
     integrated_brier,
@@ -46,86 +73,18 @@ from wearcast.models.base import SurvivalModel
 BASELINE = "cox"
 
 
-# -- what is scored ------------------------------------------------------------------
-@dataclass(frozen=True)
-class Episodes:
-    """Scored episodes of a life table; every array has shape (n_episodes,).
+# -- cross-validation ------------------------------------------------------------------
+@dataclass
+class RowScores:
+    """Every held-out row of a start/stop fold, scored with its own covariates; shape (n_rows,)."""
 
-    ``rows``: position of the episode's last row in the table (its covariates
-    are used); ``entry``/``exit``: ages in days; ``event``: ends in a failure;
-    ``unit_id``/``life``: whose episode it is.
-    """
-
-    rows: np.ndarray
     entry: np.ndarray
     exit: np.ndarray
     event: np.ndarray
-    unit_id: np.ndarray
-    life: np.ndarray
-
-    def __len__(self) -> int:
-        return len(self.rows)
-
-    def subset(self, mask: np.ndarray) -> "Episodes":
-        return Episodes(*(getattr(self, f)[mask] for f in ("rows", "entry", "exit", "event", "unit_id", "life")))
+    units: np.ndarray
+    risk: np.ndarray
 
 
-def score_episodes(table: LifeTable) -> Episodes:
-    """One scored row per episode of ``table`` (see the module docstring)."""
-    f = table.frame
-    if len(f) == 0:
-        empty = np.zeros(0)
-        return Episodes(empty.astype(np.int64), empty, empty, empty.astype(bool), empty.astype(object), empty)
-    order = np.lexsort((f["entry_age"].to_numpy(), f["life"].to_numpy(), f["unit_id"].to_numpy()))
-    unit = f["unit_id"].to_numpy()[order]
-    life = f["life"].to_numpy()[order]
-    failed = f["failed"].to_numpy(bool)[order]
-    new_life = np.ones(len(order), bool)
-    new_life[1:] = (unit[1:] != unit[:-1]) | (life[1:] != life[:-1])
-    starts = new_life.copy()
-    starts[1:] |= failed[:-1]
-    first = np.flatnonzero(starts)
-    last = np.concatenate([first[1:] - 1, [len(order) - 1]])
-    rows = order[last]
-    return Episodes(
-        rows=rows,
-        entry=f["entry_age"].to_numpy(float)[order[first]],
-        exit=f["exit_age"].to_numpy(float)[rows],
-        event=failed[last],
-        unit_id=unit[last].astype(str),
-        life=life[last],
-    )
-
-
-# -- folds ---------------------------------------------------------------------------
-def grouped_folds(table: LifeTable, k: int, seed: int) -> list[tuple[np.ndarray, np.ndarray]]:
-    """``k`` (train_rows, test_rows) pairs of row positions; all rows of a unit share a fold.
-
-    Units are shuffled by ``seed`` and dealt round-robin, so fold sizes differ
-    by at most one unit. Raises :class:`ConfigError` when there are fewer units than folds.
-    """
-    codes = table.unit_codes()
-    n_units = int(codes.max()) + 1 if len(codes) else 0
-    if k < 2 or n_units < k:
-        raise ConfigError(
-            f"cannot make {k} unit-grouped folds from {n_units} units; set [validation] folds "
-            f"between 2 and {max(2, n_units)}."
-        )
-    fold_of_unit = np.empty(n_units, dtype=np.int64)
-    fold_of_unit[np.random.default_rng(seed).permutation(n_units)] = np.arange(n_units) % k
-    fold = fold_of_unit[codes]
-    return [(np.flatnonzero(fold != i), np.flatnonzero(fold == i)) for i in range(k)]
-
-
-def split_fold(table: LifeTable, episodes: Episodes, train_rows: np.ndarray, test_rows: np.ndarray):
-    """``(training table, held-out episodes, training episodes)`` of one fold."""
-    in_test = np.zeros(table.n_rows, bool)
-    in_test[test_rows] = True
-    return (table.take_rows(train_rows), episodes.subset(in_test[episodes.rows]),
-            episodes.subset(~in_test[episodes.rows]))
-
-
-# -- cross-validation ------------------------------------------------------------------
 @dataclass
 class FoldScores:
     """Held-out arrays of one fold and one model (episodes of the test units)."""
@@ -140,6 +99,7 @@ class FoldScores:
     train_exit: np.ndarray
     train_event: np.ndarray
     train_window: np.ndarray  # training episodes' exit - entry (days), for the AUC's censoring weights
+    rows: RowScores | None = None  # start/stop data only: every held-out row (time-dependent C)
 
 
 @dataclass
@@ -150,7 +110,8 @@ class CVResult:
     ``summary``: one row per model with ``<metric>`` (mean over folds; counts
     are summed) and ``<metric>_se`` (standard error over folds);
     ``scores[model][fold]``: the :class:`FoldScores` behind them;
-    ``folds``: the (train_rows, test_rows) pairs used.
+    ``folds``: the (train_rows, test_rows) pairs used; ``time_dependent``:
+    the table has start/stop rows and the summary carries ``c_time_dependent``.
     """
 
     models: list[str]
@@ -164,15 +125,16 @@ class CVResult:
     scores: dict[str, list[FoldScores]] = field(repr=False)
     folds: list[tuple[np.ndarray, np.ndarray]] = field(repr=False, default_factory=list)
     notes: list[str] = field(default_factory=list)
+    time_dependent: bool = False
 
 
 def _uno_column(tau: float) -> str:
     return f"c_uno_tau_{int(round(tau))}d"
 
 
-def metric_columns(horizons_days, tau_days: float) -> list[str]:
-    """Metric column names in output order."""
-    cols = ["c_harrell", "c_truncation", _uno_column(tau_days)]
+def metric_columns(horizons_days, tau_days: float, time_dependent: bool = False) -> list[str]:
+    """Metric column names in output order (``c_time_dependent`` only for start/stop data)."""
+    cols = ["c_harrell", "c_truncation", *(["c_time_dependent"] if time_dependent else []), _uno_column(tau_days)]
     cols += [f"auc_{h}d" for h in horizons_days]
     cols += ["brier_integrated"]
     for h in horizons_days:
@@ -219,7 +181,8 @@ def cross_validate(
     entry). ``tau_days``: Uno's τ; by default chosen once from all episodes
     (:func:`wearcast.metrics.choose_tau`). Seeds for the folds and for every
     (fold, model) refit are drawn up front from ``numpy.random.default_rng(seed)``,
-    so ``jobs`` (parallel worker processes for the fits; 0 = all cores) never
+    each model's from its name (:func:`wearcast._seeds.name_seed`, so the list of
+    models moves no model's results), so ``jobs`` (parallel worker processes for the fits; 0 = all cores) never
     changes a result.
     """
     if not models:
@@ -230,10 +193,13 @@ def cross_validate(
     horizons = [int(h) for h in horizons_days]
     names = list(models)
     rng = np.random.default_rng(seed)
-    fold_seed = int(rng.integers(2**31 - 1))
-    model_seeds = rng.integers(0, 2**31 - 1, size=(k, len(names)))
+    fold_seed, model_base = (int(v) for v in rng.integers(0, 2**31 - 1, size=2))
+    # each (fold, model) seed from the model's name: the candidate list moves no model's results
+    model_seeds = np.array([[name_seed(model_base, name, i) for name in names] for i in range(k)], np.int64)
     folds = grouped_folds(table, k, fold_seed)
     episodes = score_episodes(table)
+    start_stop = len(episodes) < table.n_rows
+    row_episode = row_episodes(table) if start_stop else None
     if tau_days is None:
         tau_days = choose_tau(episodes.exit, episodes.event, episodes.exit)
     tau_days = float(tau_days)
@@ -246,15 +212,27 @@ def cross_validate(
     for i, (train_rows, test_rows) in enumerate(folds):
         train_table, test_ep, train_ep = split_fold(table, episodes, train_rows, test_rows)
         X_test = table.X.iloc[test_ep.rows].reset_index(drop=True)
-        held_out.append((test_ep, train_ep))
+        rows_in = None
+        if start_stop:
+            # every held-out row, with the position of its episode among the held-out episodes
+            local = np.full(len(episodes), -1, np.int64)
+            held = np.zeros(table.n_rows, bool)
+            held[test_rows] = True
+            local[held[episodes.rows]] = np.arange(len(test_ep))
+            rows_in = (table.X.iloc[test_rows].reset_index(drop=True), table.entry[test_rows],
+                       table.exit[test_rows], local[row_episode[test_rows]], np.isin(test_rows, test_ep.rows))
+        held_out.append((test_ep, train_ep, test_rows))
         for j, name in enumerate(names):
             tasks.append(delayed(_fit_and_predict)(models[name], int(model_seeds[i, j]), train_table, X_test,
-                                                   test_ep.entry, horizons, brier_times))
+                                                   test_ep.entry, horizons, brier_times, rows_in))
     n_jobs = -1 if jobs == 0 else max(1, int(jobs))
     results = iter(Parallel(n_jobs=n_jobs)(tasks) if n_jobs != 1 else [t[0](*t[1], **t[2]) for t in tasks])
-    for i, (test_ep, train_ep) in enumerate(held_out):
+    unit_ids = table.frame["unit_id"].to_numpy().astype(str)
+    for i, (test_ep, train_ep, test_rows) in enumerate(held_out):
         for name in names:
-            risk, prob, survival = next(results)
+            risk, prob, survival, row_risk = next(results)
+            rows_scored = None if row_risk is None else RowScores(
+                table.entry[test_rows], table.exit[test_rows], table.event[test_rows], unit_ids[test_rows], row_risk)
             s = FoldScores(
                 entry=test_ep.entry,
                 exit=test_ep.exit,
@@ -266,27 +244,57 @@ def cross_validate(
                 train_exit=train_ep.exit,
                 train_event=train_ep.event,
                 train_window=train_ep.exit - train_ep.entry,
+                rows=rows_scored,
             )
             scores[name].append(s)
             rows.append({"fold": i + 1, "model": name, "units": len(np.unique(s.units)), "episodes": len(s.exit),
                          **fold_metrics(s, horizons, tau_days, brier_times)})
     per_fold = pd.DataFrame(rows)
-    columns = metric_columns(horizons, tau_days)
+    columns = metric_columns(horizons, tau_days, start_stop)
     summary = _summarise(per_fold, names, columns)
     notes = [IPCW_ENTRY_NOTE, f"Uno's C is restricted to failures before age {tau_days:g} days (tau)."]
-    return CVResult(names, k, seed, horizons, tau_days, brier_times, per_fold, summary, scores, folds, notes)
+    if start_stop:
+        notes.append("The life table has start/stop rows: c_time_dependent scores every held-out row with the "
+                     "readings in force on it, each failure against the units at risk at its age; the other "
+                     "indices score each unit on its last row.")
+    return CVResult(names, k, seed, horizons, tau_days, brier_times, per_fold, summary, scores, folds, notes,
+                    start_stop)
+
+
+def constant_score_models(result: CVResult) -> dict[str, bool]:
+    """Model name -> whether its held-out risk score was the same for every unit in every fold.
+
+    Such a model orders nobody (a booster that kept no tree): its C is 0.5 by
+    construction with no spread over folds, so the choice must not treat it as
+    a candidate that ranks units at chance level.
+    """
+    return {name: all(len(s.risk) > 0 and np.ptp(s.risk) == 0 for s in folds)
+            for name, folds in result.scores.items()}
 
 
 def _fit_and_predict(template: SurvivalModel, seed: int, train_table: LifeTable, X_test: pd.DataFrame,
-                     entry_test: np.ndarray, horizons, brier_times: np.ndarray):
-    """One (fold, model) cell: fit a fresh copy on the training units, predict the held-out ones."""
+                     entry_test: np.ndarray, horizons, brier_times: np.ndarray, rows_in=None):
+    """One (fold, model) cell: fit a fresh copy on the training units, predict the held-out ones.
+
+    ``rows_in`` (start/stop data): ``(X, entry, exit, episode, last row)`` of every held-out row; each row
+    is then scored with its own covariates, and the horizon probabilities are taken with the
+    readings in force over the window (:mod:`wearcast._metrics_in_force`) instead of the last row's."""
     model = template.unfitted_copy(seed)
     model.fit(train_table)
     # one scoring pass; the metrics use the risk score only through its order (log is fine)
     risk, p = model.score_units(X_test, entry_test, horizons)
     risk, p = np.asarray(risk, float), np.asarray(p, float)
     prob = {h: p[:, j] for j, h in enumerate(horizons)}
-    return risk, prob, np.asarray(model.survival(X_test, brier_times), float)
+    row_risk = None
+    if rows_in is not None:
+        X_rows, row_entry, row_exit, episode, last_row = rows_in
+        row_risk = np.asarray(model.risk_score(X_rows), float)
+        h_start = np.asarray(model.cumulative_hazard_at(X_rows, row_entry), float)
+        for h in horizons:
+            ends, inside = window_ends(row_entry, row_exit, entry_test[episode], h, last_row)
+            h_end = np.asarray(model.cumulative_hazard_at(X_rows, ends), float)
+            prob[h] = in_force_probability(h_start, h_end, inside, episode, len(entry_test))
+    return risk, prob, np.asarray(model.survival(X_test, brier_times), float), row_risk
 
 
 def _summarise(per_fold: pd.DataFrame, names: list[str], columns: list[str]) -> pd.DataFrame:
@@ -308,7 +316,7 @@ def _summarise(per_fold: pd.DataFrame, names: list[str], columns: list[str]) -> 
 
 
 # -- comparison with bootstrap intervals ------------------------------------------------
-_CONCORDANCE = ("c_harrell", "c_truncation")
+_CONCORDANCE = ("c_harrell", "c_truncation", "c_time_dependent")
 
 
 def _concordance_only(s: FoldScores, horizons_days, tau_days: float, brier_times) -> dict[str, float]:
@@ -318,14 +326,20 @@ def _concordance_only(s: FoldScores, horizons_days, tau_days: float, brier_times
     first exit: the same pairs as scikit-survival's (tests check the equality), much faster.
     """
     before = np.full(len(s.exit), min(0.0, float(s.exit.min(initial=0.0))) - 1.0)
-    return {"c_harrell": truncated_concordance_counts(before, s.exit, s.event, s.risk)["c"],
-            "c_truncation": truncated_concordance_counts(s.entry, s.exit, s.event, s.risk)["c"]}
+    out = {"c_harrell": truncated_concordance_counts(before, s.exit, s.event, s.risk)["c"],
+           "c_truncation": truncated_concordance_counts(s.entry, s.exit, s.event, s.risk)["c"]}
+    if s.rows is not None:
+        r = s.rows
+        out["c_time_dependent"] = time_dependent_c(r.entry, r.exit, r.event, r.risk).c
+    return out
 
 
 def _bootstrap_frame(folds, draws_idx, bootstrap, evaluate, horizons, tau, brier_times, columns) -> pd.DataFrame:
-    """One model's metric values on every bootstrap resample (rows) of the held-out units."""
+    """One model's metric values on every bootstrap resample (rows) of the held-out units.
+
+    ``draws_idx[f][b]``: (episode positions, row positions or None) of resample ``b`` of fold ``f``."""
     return pd.DataFrame([
-        _combine([evaluate(_resampled(s, draws_idx[f][b]), horizons, tau, brier_times)
+        _combine([evaluate(_resampled(s, *draws_idx[f][b]), horizons, tau, brier_times)
                   for f, s in enumerate(folds)], columns)
         for b in range(bootstrap)
     ], columns=columns)
@@ -364,10 +378,14 @@ def _normal_interval(col: str, values: np.ndarray, summed: bool, z: float) -> di
     return {col: est, f"{col}_low": est - z * se, f"{col}_high": est + z * se}
 
 
-def _resampled(s: FoldScores, idx: np.ndarray) -> FoldScores:
+def _resampled(s: FoldScores, idx: np.ndarray, row_idx: np.ndarray | None = None) -> FoldScores:
+    rows = None
+    if s.rows is not None and row_idx is not None:
+        r = s.rows
+        rows = RowScores(r.entry[row_idx], r.exit[row_idx], r.event[row_idx], r.units[row_idx], r.risk[row_idx])
     return FoldScores(s.entry[idx], s.exit[idx], s.event[idx], s.units[idx], s.risk[idx],
                       {h: p[idx] for h, p in s.prob.items()}, s.survival[idx], s.train_exit,
-                      s.train_event, s.train_window)
+                      s.train_event, s.train_window, rows)
 
 
 def _combine(fold_values: list[dict[str, float]], columns: list[str]) -> dict[str, float]:
@@ -411,15 +429,20 @@ def compare_models(
     attribute ``interval_method`` of the result says which is which.
     ``jobs``: worker processes, one model each (0 = all cores); no result depends on it.
     """
-    all_columns = metric_columns(result.horizons_days, result.tau_days)
+    all_columns = metric_columns(result.horizons_days, result.tau_days, result.time_dependent)
     columns = all_columns if resampled_columns is None else [c for c in all_columns if c in set(resampled_columns)]
     fold_spread = [c for c in all_columns if c not in columns]
     evaluate = _concordance_only if set(columns) <= set(_CONCORDANCE) else fold_metrics
     rng = np.random.default_rng(seed)
     fold_seeds = rng.integers(0, 2**31 - 1, size=result.k)
-    # the same resamples for every model (paired differences)
-    draws_idx = [unit_resamples(fold.units, bootstrap, int(fold_seeds[f]))
-                 for f, fold in enumerate(result.scores[result.models[0]])]
+    # the same resamples for every model (paired differences); on start/stop data the same
+    # seed over the same held-out units draws the same units for the rows as for the episodes
+    draws_idx = []
+    for f, fold in enumerate(result.scores[result.models[0]]):
+        episode_draws = unit_resamples(fold.units, bootstrap, int(fold_seeds[f]))
+        row_draws = (unit_resamples(fold.rows.units, bootstrap, int(fold_seeds[f])) if fold.rows is not None
+                     else [None] * bootstrap)
+        draws_idx.append(list(zip(episode_draws, row_draws)))
     point = {name: result.summary.set_index("model").loc[name, columns].astype(float).to_dict()
              for name in result.models}
     n_jobs = -1 if jobs == 0 else max(1, int(jobs))

@@ -14,7 +14,8 @@ from wearcast.cli._common import (command_help, config_argument, library_call, l
 @click.command(
     "backtest",
     help=command_help(
-        "Rebuild the data as it stood at a past date, fit the models on it, predict failures "
+        "Rebuild the data as it stood at a past date, run the model choice on it as 'wearcast fit' "
+        "would have then (the 'chosen' row) and fit the [model] fit models and Cox beside it, predict failures "
         "within the horizon for every unit then in service and compare with what happened: "
         "concordance, expected vs observed failures, precision of the top-k list and its lift "
         "over a random list, over oldest-first and over the Cox model. Several origins with "
@@ -39,14 +40,12 @@ from wearcast.cli._common import (command_help, config_argument, library_call, l
 def command(config: Path, as_of: dt.datetime, horizon: str, every: str | None, origins: int,
             top_k: int | None, refits: int, out_dir: Path | None) -> None:
     from wearcast.backtest import run_backtest, write_backtest
-    from wearcast.fitting import config_model_names, make_model
+    from wearcast.fitting import backtest_models
     from wearcast.validation import format_table
 
     cfg, default_out = load(config)
     out_dir = (out_dir or default_out) / "backtest"
-    names = list(dict.fromkeys(config_model_names(cfg) + ["cox"]))
-    factories = {name: (lambda seed, n=name: make_model(n, cfg, seed)) for name in names}
-    result = run_backtest(cfg, factories, as_of.date(), parse_days(horizon),
+    result = run_backtest(cfg, backtest_models(cfg), as_of.date(), parse_days(horizon),
                           every_months=parse_months(every) if every else None, origins=origins,
                           top_k=top_k or cfg.ranking.top_k, seed=cfg.model.seed, refits=refits,
                           refit_jobs=cfg.ranking.jobs)

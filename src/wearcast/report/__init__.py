@@ -63,6 +63,8 @@ class ReportInputs:
     (``replacement_ages.csv``, :func:`wearcast.replacement.replacement_ages`).
     ``warnings``: sentences the run printed as warnings (``metrics.json``
     ``warnings``, :func:`wearcast.fitting.fit_warnings`), shown first.
+    ``choice``: the model choice from ``metrics.json`` (``chosen``, ``reason``,
+    ``concordance_words``: which C ranked the candidates).
     """
 
     title: str = "Fleet failure-risk report"
@@ -89,6 +91,7 @@ class ReportInputs:
     mode_forecast: pd.DataFrame | None = None
     replacement_ages: pd.DataFrame | None = None
     warnings: list[str] = field(default_factory=list)
+    choice: dict | None = None
     top_k: int = 20
 
     def group_columns(self, ranked: pd.DataFrame) -> list[str]:
@@ -189,6 +192,7 @@ def report_inputs_from_run_folder(folder: str | Path, **overrides: Any) -> Repor
         "data_quality": _read_json(folder, "check_summary.json"),
         "group_by": summary.get("group_by"),
         "warnings": _run_warnings(summary, metrics),
+        "choice": metrics.get("choice") if isinstance(metrics.get("choice"), dict) else None,
     }
     forecast = values["fleet_forecast"]
     if forecast is not None:

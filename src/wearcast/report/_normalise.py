@@ -102,6 +102,8 @@ def measure_label(measure: str) -> str:
     """Plain names for concordance measures."""
     if measure == "c_harrell":
         return "Harrell's C"
+    if measure == "c_time_dependent":
+        return "C with the readings in force at each failure"
     if measure == "c_truncation":
         return "C with delayed entry"
     m = re.match(r"c_uno_tau_(\d+)d", measure)
@@ -188,10 +190,11 @@ def backtest_long(backtest: pd.DataFrame) -> tuple[pd.DataFrame | None, str]:
 
 
 def backtest_columns(backtest: pd.DataFrame) -> list[str]:
-    """The backtest summary columns worth a table: model, precision, lift, C, counts, and at how
+    """The backtest summary columns worth a table: model (and, for ``chosen``, the candidates it
+    picked), precision, lift, C (Harrell's; the time-dependent C on start/stop data), counts, and at how
     many origins the observed count fell inside the chance interval and the forecast interval."""
-    keep = re.compile(r"^(model|origins|precision_top\d+_\d+d(_oldest)?|lift_top\d+_\d+d_vs_\w+|"
-                      r"c_harrell_\d+d|expected_failures_\d+d|observed_failures_\d+d|"
+    keep = re.compile(r"^(model|candidates|origins|precision_top\d+_\d+d(_oldest)?|lift_top\d+_\d+d_vs_\w+|"
+                      r"c_harrell_\d+d|c_time_dependent_\d+d|expected_failures_\d+d|observed_failures_\d+d|"
                       r"origins_observed_inside_(interval|forecast)_\d+d)$")
     return [c for c in backtest.columns if keep.match(str(c))]
 

@@ -243,6 +243,10 @@ def evidence(inputs) -> Section:
             h.Column("Model", "model", numeric=False), h.Column("Measure", "measure", numeric=False),
             h.Column("Estimate", "value", h.fmt_number), h.Column("95 % low", "low", h.fmt_number),
             h.Column("95 % high", "high", h.fmt_number)], cls="concordance"))
+    choice = inputs.choice or {}
+    if choice.get("chosen") and choice.get("concordance_words"):
+        parts.append(h.note(f"Model used: {choice['chosen']}. The candidates were ranked on the cross-validated "
+                            f"{choice['concordance_words']}. {choice.get('reason', '')}".rstrip()))
     calibration = inputs.calibration
     if calibration is not None and not calibration.empty and {"predicted", "observed"} <= set(calibration.columns):
         figures["calibration"] = _figures.calibration_figure(calibration)
